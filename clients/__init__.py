@@ -1,0 +1,3 @@
+"""Client-side helpers for programs that talk to the wingwatch daemon."""
+
+__all__: list[str] = []

@@ -1,0 +1,3 @@
+"""Example programs that use the client library."""
+
+__all__: list[str] = []
