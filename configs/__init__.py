@@ -1,0 +1,1 @@
+"""Shipped configuration files (TOML), installed as package data of ``wingwatch.configs``."""
