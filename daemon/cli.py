@@ -1,0 +1,236 @@
+"""The ``wingwatch`` command line: one entry point, one subcommand per job.
+
+Every subcommand that summarises something takes ``--json`` and then prints exactly one JSON
+object on stdout; human text otherwise. Errors are one sentence on stderr and a non-zero exit
+(2 for bad input, 1 for a failed job); tracebacks only with ``--debug``. Progress of long work
+goes to stderr.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import signal
+import sys
+from typing import Any, Callable
+
+from rich.console import Console
+
+from wingwatch.daemon.errors import WingwatchError
+from wingwatch.daemon.version import __version__
+
+__all__ = ["main", "build_parser"]
+
+ADVISORY_LINE = (
+    "wingwatch warnings are advisory only; the facility's safety procedures and test director decide."
+)
+
+err_console = Console(stderr=True, highlight=False)
+
+
+def _print_json(obj: Any) -> None:
+    sys.stdout.write(json.dumps(obj, indent=2, sort_keys=False, default=str) + "\n")
+
+
+# --------------------------------------------------------------------------------------------
+# run
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    from wingwatch.daemon.config import load_config, to_toml
+    from wingwatch.daemon.service import Daemon
+
+    cfg = load_config(args.config)
+    if args.print_config:
+        sys.stdout.write(to_toml(cfg))
+        return 0
+    daemon = Daemon(cfg, record=not args.no_record, record_dir=args.record_dir,
+                    insecure=args.insecure)
+    try:
+        def _stop(signum: int, frame: Any) -> None:
+            daemon.stop()
+
+        signal.signal(signal.SIGINT, _stop)
+        signal.signal(signal.SIGTERM, _stop)
+        if not args.json:
+            err_console.print(
+                f"wingwatch {__version__}: listening for sensor frames on {cfg.endpoints.sensor}, "
+                f"publishing on {cfg.endpoints.publish}"
+            )
+            if daemon.log_path:
+                err_console.print(f"recording to {daemon.log_path}")
+            err_console.print(ADVISORY_LINE)
+            err_console.print("Ctrl-C stops the daemon.")
+        summary = daemon.run(duration_s=args.duration)
+    finally:
+        daemon.close()
+    if args.json:
+        _print_json(summary)
+    else:
+        err_console.print(
+            f"stopped: {summary['accepted']} frames accepted ({summary['samples']} samples), "
+            f"{summary['rejected']} rejected, {summary['gaps']} gaps, "
+            f"{summary['duplicates']} duplicates"
+        )
+        if summary["log"]:
+            err_console.print(f"log: {summary['log']}   (summarise it: wingwatch inspect {summary['log']})")
+    return 0
+
+
+# --------------------------------------------------------------------------------------------
+# inspect
+
+
+def _cmd_inspect(args: argparse.Namespace) -> int:
+    from wingwatch.daemon.logsummary import summarise_log
+
+    progress_cb = None
+    prog = None
+    if sys.stderr.isatty() and not args.json:
+        from rich.progress import Progress
+
+        prog = Progress(console=err_console, transient=True)
+        task = prog.add_task("reading log", total=1)
+        prog.start()
+
+        def progress_cb(done: int, total: int) -> None:
+            prog.update(task, completed=done, total=max(total, 1))
+
+    try:
+        s = summarise_log(args.log, progress=progress_cb)
+    finally:
+        if prog is not None:
+            prog.stop()
+    if args.json:
+        _print_json(s)
+        return 0
+    from rich.table import Table
+
+    out = Console(highlight=False)
+    t = Table(title=f"replay log {s['path']}", show_header=False, box=None)
+    rows = [
+        ("run", f"{s['run_id']} (wingwatch {s['software_version']}, source {s['source']})"),
+        ("segments", str(len(s["segments"]))),
+        ("duration", f"{s['duration_s']:.3f} s of source time"),
+        ("frames", f"{s['frames']} received, {s['accepted']} accepted, {s['rejected']} rejected"),
+        ("samples", str(s["samples"])),
+        ("streams", ", ".join(s["streams"]) or "-"),
+        ("channels", ", ".join(s["channels"]) or "-"),
+        ("gaps", f"{s['gaps']} ({s['missing_frames']} frames missing)"),
+        ("duplicates", str(s["duplicates"])),
+        ("out of order", str(s["out_of_order"])),
+        ("restarts", str(s["restarts"])),
+        ("rejections", ", ".join(f"{k} {v}" for k, v in s["rejected_by_reason"].items()) or "none"),
+        ("records", ", ".join(f"{k} {v}" for k, v in s["records_by_kind"].items())),
+        ("damage", "none" if not s["damage"] else
+         "; ".join(f"{d['kind']} at byte {d['offset']} of {d['segment']} ({d['reason']})"
+                   for d in s["damage"])),
+    ]
+    for k, v in rows:
+        t.add_row(k, v)
+    out.print(t)
+    if s["note"]:
+        err_console.print(s["note"])
+    return 0
+
+
+# --------------------------------------------------------------------------------------------
+
+
+def _not_yet(name: str, issue: str) -> Callable[[argparse.Namespace], int]:
+    def run(args: argparse.Namespace) -> int:
+        err_console.print(f"wingwatch {name}: not yet available in this version ({issue}).")
+        return 2
+
+    return run
+
+
+def _add_rig(sub: argparse._SubParsersAction) -> None:
+    try:
+        from wingwatch.daemon.rig import cli as rig_cli  # the virtual rig
+    except ImportError:
+        p = sub.add_parser("rig", help="virtual rig (not yet available)")
+        p.set_defaults(func=_not_yet("rig", "the virtual rig is being built"))
+        return
+    p = sub.add_parser("rig", help="run the virtual rig: a simulated flexible plate that streams "
+                                   "like a tunnel DAQ",
+                       description="Run the virtual rig (a physics-based flexible-plate simulator).")
+    rig_cli.configure_parser(p)
+    p.set_defaults(func=rig_cli.run)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="wingwatch",
+        description=(
+            "Data acquisition and online identification for flexible-wing tunnel tests. "
+            + ADVISORY_LINE
+        ),
+    )
+    parser.add_argument("--version", action="version", version=f"wingwatch {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks and debug logging")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    p = sub.add_parser("run", help="run the daemon: ingest, record, identify, watch, publish",
+                       description="Run the wingwatch daemon until Ctrl-C (or --duration).")
+    p.add_argument("--config", metavar="FILE", help="configuration file (TOML) laid over the "
+                   "shipped default")
+    p.add_argument("--print-config", action="store_true", help="print the resolved configuration "
+                   "as TOML and exit")
+    p.add_argument("--duration", type=float, metavar="S", help="stop after S seconds of wall time")
+    p.add_argument("--record-dir", metavar="DIR", help="record into DIR instead of recorder.directory")
+    p.add_argument("--no-record", action="store_true", help="do not write a replay log")
+    p.add_argument("--insecure", action="store_true", help="allow binding beyond loopback "
+                   "without authentication (logged loudly)")
+    p.add_argument("--json", action="store_true", help="print the final summary as one JSON object")
+    p.set_defaults(func=_cmd_run)
+
+    p = sub.add_parser("inspect", help="summarise a replay log",
+                       description="Summarise a replay log: counts, gaps, rejections, damage.")
+    p.add_argument("log", metavar="LOG", help="a log segment (.wwlog) or a run directory")
+    p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.set_defaults(func=_cmd_inspect)
+
+    _add_rig(sub)
+    for name, text, issue in (
+        ("monitor", "terminal monitor", "the publish and monitor issue"),
+        ("calibrate", "identify the reference model from a pitch-up manoeuvre", "the calibration issue"),
+        ("replay", "replay a recorded run through the pipeline", "the replay issue"),
+        ("demo", "the whole system on the virtual rig", "the replay and demo issue"),
+        ("keys", "create CurveZMQ key pairs", "the hardening issue"),
+    ):
+        p = sub.add_parser(name, help=f"{text} (not yet available)")
+        p.set_defaults(func=_not_yet(name, issue))
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(
+        level=logging.DEBUG if args.debug else logging.WARNING,
+        format="wingwatch: %(levelname)s %(name)s: %(message)s",
+    )
+    if not getattr(args, "command", None):
+        parser.print_help(sys.stderr)
+        return 2
+    try:
+        return int(args.func(args) or 0)
+    except WingwatchError as exc:
+        if args.debug:
+            raise
+        err_console.print(f"wingwatch {args.command}: error: {exc}", markup=False)
+        return 2
+    except OSError as exc:
+        if args.debug:
+            raise
+        where = f" ({exc.filename})" if getattr(exc, "filename", None) else ""
+        err_console.print(f"wingwatch {args.command}: error: {exc.strerror or exc}{where}", markup=False)
+        return 1
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

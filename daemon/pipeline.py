@@ -1,0 +1,243 @@
+"""The pipeline: one code path for live, replay and offline recording.
+
+::
+
+    inbound bytes ──► Ingest ──► ChannelMap ──► [identify] ──► [watch] ──► outputs
+         │                                                                   │
+         └──────────────────────► recorder (every frame, accepted or not) ◄──┘
+
+:class:`Pipeline` holds the stages and turns one inbound message into a verdict and a list of
+:class:`Output` messages; it reads no clock. :class:`Session` wraps a pipeline with the
+recorder and an output sink (the PUB socket live, a list in replay): it records every inbound
+message (accepted or rejected, raw bytes as received) and every output, and publishes the
+outputs. The live daemon, ``wingwatch replay`` and the virtual rig's ``--out`` all drive a
+Session, so they cannot drift apart.
+
+A stage is a small object with ``update(block) -> list[Output]``, ``reset()``,
+``state_dict()`` and ``load_state_dict(state)``; to add one, append it to
+:attr:`Pipeline.stages` (see DEVELOPERS.md).
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from typing import Any, Callable, Protocol
+
+from wingwatch.daemon import replaylog as rl
+from wingwatch.daemon.codec import TOPICS, encode_message
+from wingwatch.daemon.condition import ChannelMap, ConditionedBlock
+from wingwatch.daemon.config import Config
+from wingwatch.daemon.ingest import Ingest, IngestVerdict
+from wingwatch.daemon.recorder import LogWriter
+from wingwatch.daemon.version import __version__
+
+__all__ = ["Output", "Stage", "Pipeline", "Session", "ADVISORY", "OUTPUT_LOG_KIND"]
+
+#: The caution every warning and the status heartbeat carry (BRIEF: Safety).
+ADVISORY = (
+    "Advisory only: wingwatch is not a safety system or an interlock; the facility's limit "
+    "switches, test procedures and test director decide."
+)
+
+#: Which replay-log record kind each output message kind is recorded as.
+OUTPUT_LOG_KIND = {
+    "model": rl.KIND_MODEL,
+    "warning": rl.KIND_WARNING,
+    "event": rl.KIND_EVENT,
+    "status": rl.KIND_STATUS,
+}
+
+
+@dataclass(frozen=True)
+class Output:
+    """A message the pipeline wants published (and recorded): kind and plain-data body."""
+
+    kind: str
+    body: dict[str, Any]
+
+    def encode(self) -> tuple[bytes, bytes]:
+        return encode_message(self.kind, self.body)
+
+
+class Stage(Protocol):
+    def update(self, block: ConditionedBlock) -> list[Output]: ...
+
+    def reset(self) -> None: ...
+
+    def state_dict(self) -> dict[str, Any]: ...
+
+    def load_state_dict(self, state: dict[str, Any]) -> None: ...
+
+
+class Pipeline:
+    """Ingest, condition and the downstream stages, driven only by the message bytes."""
+
+    def __init__(self, config: Config) -> None:
+        self.config = config
+        self.ingest = Ingest(config)
+        self.channel_map = ChannelMap(config)
+        self.stages: list[Stage] = []
+        self.last_sample_t: float | None = None
+        self.first_sample_t: float | None = None
+
+    def reset(self) -> None:
+        self.ingest.reset()
+        self.channel_map.reset()
+        for s in self.stages:
+            s.reset()
+        self.last_sample_t = None
+        self.first_sample_t = None
+
+    def process(self, topic: bytes, payload: bytes, *, parts_ok: bool = True
+                ) -> tuple[IngestVerdict, list[Output]]:
+        verdict = self.ingest.update(topic, payload, parts_ok=parts_ok)
+        outputs: list[Output] = []
+        frame = verdict.frame
+        if frame is None:
+            return verdict, outputs
+        if verdict.discontinuity:
+            outputs.append(Output("event", {
+                "t": frame.t0,
+                "event": "restart" if verdict.restart else ("gap" if verdict.gap_frames else "time_gap"),
+                "stream": frame.stream,
+                "seq": frame.seq,
+                "missing_frames": verdict.gap_frames,
+                "missing_s": verdict.time_gap_s,
+            }))
+        if self.first_sample_t is None:
+            self.first_sample_t = frame.t0
+        self.last_sample_t = frame.t_end
+        if self.channel_map.accepts(frame):
+            block = self.channel_map.apply(frame, verdict.discontinuity)
+            for stage in self.stages:
+                outputs.extend(stage.update(block))
+        return verdict, outputs
+
+    def state_dict(self) -> dict[str, Any]:
+        return {
+            "ingest": self.ingest.state_dict(),
+            "channel_map": self.channel_map.state_dict(),
+            "stages": [s.state_dict() for s in self.stages],
+            "first_sample_t": self.first_sample_t,
+            "last_sample_t": self.last_sample_t,
+        }
+
+    def load_state_dict(self, state: dict[str, Any]) -> None:
+        self.ingest.load_state_dict(state["ingest"])
+        self.channel_map.load_state_dict(state["channel_map"])
+        for s, st in zip(self.stages, state["stages"], strict=True):
+            s.load_state_dict(st)
+        self.first_sample_t = state["first_sample_t"]
+        self.last_sample_t = state["last_sample_t"]
+
+
+Sink = Callable[[bytes, bytes], None]
+
+
+@dataclass
+class Session:
+    """A pipeline with its recorder and output sink: what the daemon loop and replay drive.
+
+    Parameters
+    ----------
+    pipeline : Pipeline
+    recorder : LogWriter or None
+        Where every inbound message and every output is recorded (None: not recorded).
+    sink : callable(topic, payload) or None
+        Where outputs are published (the PUB socket, or a list in replay).
+    """
+
+    pipeline: Pipeline
+    recorder: LogWriter | None = None
+    sink: Sink | None = None
+    outputs_sent: int = 0
+    started_wall: float = field(default_factory=time.time)
+    first_wall: float | None = None
+    _last_status_counters: dict[str, int] = field(default_factory=dict)
+    _last_status_wall: float | None = None
+
+    def inbound(self, parts: list[bytes], t_recv: float) -> IngestVerdict:
+        """Handle one inbound multipart message received at wall time ``t_recv``."""
+        parts_ok = len(parts) == 2
+        topic = parts[0] if parts else b""
+        payload = parts[1] if parts_ok else b"".join(parts[1:])
+        verdict, outputs = self.pipeline.process(topic, payload, parts_ok=parts_ok)
+        if self.recorder is not None:
+            if verdict.accepted:
+                self.recorder.append(rl.KIND_INBOUND, topic, payload, t_recv)
+            else:
+                # flags bit 0: the message did not have exactly two parts (replay re-rejects it)
+                self.recorder.append(rl.KIND_REJECTED, topic, payload, t_recv,
+                                     flags=0 if parts_ok else 1, aux=verdict.reason_code)
+        if verdict.accepted and self.first_wall is None:
+            self.first_wall = t_recv
+        for out in outputs:
+            self.emit(out, t_recv)
+        return verdict
+
+    def replay_record(self, rec: rl.Record) -> IngestVerdict:
+        """Feed a recorded inbound record back through the same path (t_recv as recorded)."""
+        if rec.kind == rl.KIND_REJECTED and rec.flags & 1:
+            parts = [rec.topic, rec.payload, b""]  # re-create the wrong part count
+        else:
+            parts = [rec.topic, rec.payload]
+        return self.inbound(parts, rec.t_recv)
+
+    def emit(self, out: Output, t_wall: float) -> None:
+        topic, payload = out.encode()
+        if self.recorder is not None:
+            self.recorder.append(OUTPUT_LOG_KIND[out.kind], topic, payload, t_wall)
+        if self.sink is not None:
+            self.sink(topic, payload)
+        self.outputs_sent += 1
+
+    def lag_s(self, now_wall: float) -> float:
+        """How far processing trails the source: wall time elapsed since the first accepted
+        frame minus source time covered since then (0 when keeping up)."""
+        p = self.pipeline
+        if self.first_wall is None or p.first_sample_t is None or p.last_sample_t is None:
+            return 0.0
+        return max(0.0, (now_wall - self.first_wall) - (p.last_sample_t - p.first_sample_t))
+
+    def status(self, now_wall: float, extra: dict[str, Any] | None = None) -> Output:
+        """Build, record and publish one status heartbeat (telemetry, not a decision)."""
+        counters = self.pipeline.ingest.snapshot()
+        rates = {}
+        if self._last_status_wall is not None and now_wall > self._last_status_wall:
+            dt = now_wall - self._last_status_wall
+            for k in ("frames", "samples", "rejected"):
+                rates[f"{k}_per_s"] = (counters[k] - self._last_status_counters.get(k, 0)) / dt
+        self._last_status_counters = {k: v for k, v in counters.items() if isinstance(v, int)}
+        self._last_status_wall = now_wall
+        body: dict[str, Any] = {
+            "t_wall": now_wall,
+            "uptime_s": now_wall - self.started_wall,
+            "t_sample": self.pipeline.last_sample_t,
+            "lag_s": self.lag_s(now_wall),
+            "counters": counters,
+            "rates": rates,
+            "flow_off_samples": self.pipeline.channel_map.flow_off_samples,
+            "software_version": __version__,
+            "advisory": ADVISORY,
+        }
+        if self.recorder is not None:
+            st = self.recorder.stats()
+            body["recorder"] = {
+                "path": st.path,
+                "records": st.records,
+                "bytes": st.bytes,
+                "segments": st.segments,
+                "failing": st.failing,
+                "backlog_records": st.backlog_records,
+                "dropped_records": st.dropped_records,
+                "last_error": st.last_error,
+            }
+        if extra:
+            body.update(extra)
+        out = Output("status", body)
+        self.emit(out, now_wall)
+        return out
+
+
+assert set(OUTPUT_LOG_KIND) == set(TOPICS)

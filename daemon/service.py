@@ -1,0 +1,208 @@
+"""The daemon loop: sockets around a :class:`~wingwatch.daemon.pipeline.Session`.
+
+The loop binds a SUB socket for sensor frames and a PUB socket for outputs (loopback by
+default; any other address needs ``insecure=True``, logged loudly), receives with a bounded
+poll, hands every message to the session (which records it and runs the pipeline), and sends a
+status heartbeat every ``status.period_s`` of wall time. Wall time is used only for the
+heartbeat and receive stamps, never in a decision.
+
+The SUB socket subscribes to everything so that a message on a wrong topic is still received,
+rejected with a reason and recorded, instead of being filtered away unseen. The transport's own
+size cap (``ZMQ_MAXMSGSIZE``) is set well above ``limits.max_payload_bytes`` so that oversized
+frames still arrive and are rejected and recorded by the ingest stage; only a message above the
+transport cap (16x the limit) is dropped by ZeroMQ before the daemon sees it.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+import time
+from pathlib import Path
+from typing import Any, Iterable
+
+import zmq
+
+from wingwatch.daemon.config import Config, endpoint_is_loopback
+from wingwatch.daemon.errors import ConfigError
+from wingwatch.daemon.pipeline import Pipeline, Session
+from wingwatch.daemon.recorder import LogWriter
+
+__all__ = ["Daemon", "record_frames", "make_recorder", "check_binds"]
+
+log = logging.getLogger("wingwatch.daemon")
+
+_POLL_MS = 50
+_DRAIN_MAX = 1000  # messages handled per poll wake-up before the loop looks at its clock
+
+
+def check_binds(config: Config, insecure: bool) -> None:
+    """Refuse non-loopback binds unless ``insecure`` (then log it loudly)."""
+    for key in ("sensor", "publish", "snapshot"):
+        ep = getattr(config.endpoints, key)
+        if not endpoint_is_loopback(ep):
+            if not insecure:
+                raise ConfigError(
+                    f"{config.source}: key 'endpoints.{key}' binds {ep}, which is not loopback; "
+                    "pass --insecure to allow it (anyone who can reach it can feed or read the daemon)."
+                )
+            log.warning("INSECURE: endpoints.%s binds %s beyond loopback without authentication", key, ep)
+
+
+def make_recorder(config: Config, *, directory: str | Path | None = None, path: str | Path | None = None,
+                  source: str = "daemon", start_unix: float | None = None) -> LogWriter:
+    """A LogWriter set up from the configuration's [recorder] table."""
+    header = {"source": source, "config": config.as_dict(), "config_source": config.source}
+    rec = config.recorder
+    if path is not None:
+        return LogWriter(path=path, header=header, fsync_interval_s=rec.fsync_interval_s,
+                         start_unix=start_unix)
+    return LogWriter(
+        directory=directory if directory is not None else rec.directory,
+        header=header,
+        rotate_bytes=int(rec.rotate_mb * (1 << 20)),
+        fsync_interval_s=rec.fsync_interval_s,
+        start_unix=start_unix,
+    )
+
+
+def record_frames(
+    frames: Iterable[tuple[bytes, bytes, float]],
+    config: Config,
+    out_path: str | Path,
+    *,
+    start_unix: float = 0.0,
+    source: str = "rig",
+) -> dict[str, Any]:
+    """Run messages ``(topic, payload, t_recv)`` through a Session into one log file, no sockets.
+
+    Used by ``wingwatch rig --out``: the same ingest and recorder as the live daemon, so the
+    file is exactly what the daemon would have recorded. With a fixed ``start_unix`` and
+    deterministic ``t_recv`` the file is bit-identical across runs. Returns the ingest counters.
+    """
+    writer = make_recorder(config, path=out_path, source=source, start_unix=start_unix)
+    session = Session(Pipeline(config), recorder=writer)
+    try:
+        for topic, payload, t_recv in frames:
+            session.inbound([topic, payload], t_recv)
+    finally:
+        writer.close()
+    out = session.pipeline.ingest.snapshot()
+    out["path"] = str(out_path)
+    return out
+
+
+class Daemon:
+    """The live daemon: SUB in, PUB out, a Session in between.
+
+    Parameters
+    ----------
+    config : Config
+    record : bool
+        Record to ``recorder.directory`` (or ``record_dir``); ``config.recorder.enabled`` also
+        gates it.
+    context : zmq.Context, optional
+        Share a context (tests use inproc endpoints that need one).
+    insecure : bool
+        Allow binding beyond loopback.
+    """
+
+    def __init__(self, config: Config, *, record: bool = True, record_dir: str | Path | None = None,
+                 context: zmq.Context | None = None, insecure: bool = False) -> None:
+        check_binds(config, insecure)
+        self.config = config
+        self._own_ctx = context is None
+        self.ctx = context or zmq.Context()
+        self.stop_event = threading.Event()
+        self.recorder = (
+            make_recorder(config, directory=record_dir) if record and config.recorder.enabled else None
+        )
+        self.sub = self.ctx.socket(zmq.SUB)
+        self.pub = self.ctx.socket(zmq.PUB)
+        try:
+            self.sub.setsockopt(zmq.LINGER, 0)
+            self.sub.setsockopt(zmq.RCVHWM, 100_000)
+            self.sub.setsockopt(zmq.MAXMSGSIZE, 16 * config.limits.max_payload_bytes)
+            self.sub.setsockopt(zmq.SUBSCRIBE, b"")
+            self.pub.setsockopt(zmq.LINGER, 0)
+            self.pub.setsockopt(zmq.SNDHWM, 10_000)
+            self.sub.bind(config.endpoints.sensor)
+            self.pub.bind(config.endpoints.publish)
+        except zmq.ZMQError as exc:
+            self.close()
+            raise ConfigError(
+                f"{config.source}: cannot bind the daemon's sockets ({exc}); is another daemon "
+                "running on these endpoints?"
+            ) from None
+        self.session = Session(Pipeline(config), recorder=self.recorder, sink=self._send)
+        self.publish_drops = 0
+        self.messages = 0
+
+    def _send(self, topic: bytes, payload: bytes) -> None:
+        try:
+            self.pub.send_multipart([topic, payload], flags=zmq.NOBLOCK)
+        except zmq.Again:
+            self.publish_drops += 1
+
+    @property
+    def log_path(self) -> Path | None:
+        if self.recorder is None:
+            return None
+        return self.recorder.run_dir or self.recorder.path
+
+    def stop(self) -> None:
+        self.stop_event.set()
+
+    def run(self, duration_s: float | None = None, max_messages: int | None = None) -> dict[str, Any]:
+        """Run until :meth:`stop`, ``duration_s`` of wall time or ``max_messages``; return a summary."""
+        poller = zmq.Poller()
+        poller.register(self.sub, zmq.POLLIN)
+        period = self.config.status_period_s
+        start = time.monotonic()
+        next_status = start
+        try:
+            while not self.stop_event.is_set():
+                now = time.monotonic()
+                if duration_s is not None and now - start >= duration_s:
+                    break
+                if now >= next_status:
+                    self.session.status(time.time(), {"publish_drops": self.publish_drops})
+                    next_status = now + period
+                timeout = max(0, min(_POLL_MS, int((next_status - now) * 1000)))
+                if not poller.poll(timeout):
+                    continue
+                for _ in range(_DRAIN_MAX):
+                    try:
+                        parts = self.sub.recv_multipart(flags=zmq.NOBLOCK)
+                    except zmq.Again:
+                        break
+                    self.session.inbound(parts, time.time())
+                    self.messages += 1
+                    if max_messages is not None and self.messages >= max_messages:
+                        self.stop_event.set()
+                        break
+        finally:
+            self.session.status(time.time(), {"publish_drops": self.publish_drops, "final": True})
+        return self.summary()
+
+    def summary(self) -> dict[str, Any]:
+        out: dict[str, Any] = dict(self.session.pipeline.ingest.snapshot())
+        out["outputs_sent"] = self.session.outputs_sent
+        out["publish_drops"] = self.publish_drops
+        out["log"] = str(self.log_path) if self.log_path else None
+        return out
+
+    def close(self) -> None:
+        for s in (getattr(self, "sub", None), getattr(self, "pub", None)):
+            if s is not None:
+                s.close(linger=0)
+        if getattr(self, "recorder", None) is not None:
+            self.recorder.close()
+        if self._own_ctx:
+            self.ctx.term()
+
+    def __enter__(self) -> "Daemon":
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
