@@ -26,7 +26,7 @@ ADVISORY_LINE = (
     "wingwatch warnings are advisory only; the facility's safety procedures and test director decide."
 )
 
-err_console = Console(stderr=True, highlight=False)
+err_console = Console(stderr=True, highlight=False, soft_wrap=True)
 
 
 def _print_json(obj: Any) -> None:
@@ -143,6 +143,7 @@ def _not_yet(name: str, issue: str) -> Callable[[argparse.Namespace], int]:
         err_console.print(f"wingwatch {name}: not yet available in this version ({issue}).")
         return 2
 
+    run.placeholder = True  # type: ignore[attr-defined]
     return run
 
 

@@ -252,7 +252,7 @@ def decode_sensor_frame(
         raise FrameRejected("bad_field", "field 'channels' names a channel twice")
 
     dtype = msg["dtype"]
-    if dtype not in _DTYPES:
+    if not isinstance(dtype, str) or dtype not in _DTYPES:
         raise FrameRejected("bad_field", "field 'dtype' must be '<f4' or '<f8'")
     n = msg["n"]
     if isinstance(n, bool) or not isinstance(n, int) or not 1 <= n <= max_samples:
@@ -317,7 +317,7 @@ _OUT_DTYPES = {"<f8", "<i8", "<c16", "<f4"}
 def decode_array(m: dict[str, Any]) -> np.ndarray:
     """Inverse of :func:`encode_array`; raises ValueError on an inconsistent map."""
     dt = m.get("dtype")
-    if dt not in _OUT_DTYPES:
+    if not isinstance(dt, str) or dt not in _OUT_DTYPES:
         raise ValueError(f"array dtype {dt!r} is not one of {sorted(_OUT_DTYPES)}")
     shape = m.get("shape")
     if not isinstance(shape, list) or not all(isinstance(s, int) and s >= 0 for s in shape):
