@@ -159,17 +159,18 @@ class LogWriter:
         return h
 
     def _open_segment(self) -> None:
-        self.segment += 1
+        index = len(self.paths)  # a failed open does not use up a segment number
         if self._single is not None:
             p = self._single
             flags = os.O_WRONLY | os.O_CREAT | os.O_TRUNC
         else:
-            p = self.run_dir / f"segment-{self.segment:04d}.wwlog"
+            p = self.run_dir / f"segment-{index:04d}.wwlog"
             flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL
         try:
             self.fd = os.open(p, flags | getattr(os, "O_BINARY", 0), 0o644)
             self.paths.append(p)
-            head = pack_file_header(self.header_for(self.segment))
+            self.segment = index
+            head = pack_file_header(self.header_for(index))
             self._write_all(head)
             self.seg_bytes = len(head)
             self.bytes += len(head)
