@@ -136,6 +136,115 @@ def _cmd_inspect(args: argparse.Namespace) -> int:
 
 
 # --------------------------------------------------------------------------------------------
+# replay
+
+
+def replay_summary(result: Any, compare: Any = None) -> dict[str, Any]:
+    """The JSON summary of a replay (shared by ``replay --json`` and the demo)."""
+    from wingwatch.daemon.codec import decode_message
+    from wingwatch.daemon.replaylog import KIND_MODEL, KIND_WARNING
+
+    models = [decode_message(o.payload) for o in result.outputs if o.kind == KIND_MODEL]
+    warnings = [decode_message(o.payload) for o in result.outputs if o.kind == KIND_WARNING]
+    out: dict[str, Any] = {
+        "realtime_factor": result.realtime_factor,
+        "samples": result.samples,
+        "frames": result.frames,
+        "source_s": result.source_s,
+        "wall_s": result.wall_s,
+        "models_published": sum(1 for m in models if m.get("status") != "rejected"),
+        "models_rejected": sum(1 for m in models if m.get("status") == "rejected"),
+        "warnings": [{"t": w.get("t"), "level": w.get("level"), "kind": w.get("warning_kind"),
+                      "event": w.get("event")} for w in warnings],
+        "events": sum(1 for o in result.outputs if o.kind not in (KIND_MODEL, KIND_WARNING)),
+        "final": result.final if hasattr(result, "final") else {},
+        "output_digest": result.output_digest,
+        "counters": result.counters,
+        "damage": result.damage,
+    }
+    if compare is not None:
+        out["compare"] = compare
+    return out
+
+
+def _cmd_replay(args: argparse.Namespace) -> int:
+    from wingwatch.daemon.config import load_config
+    from wingwatch.daemon.replay import compare_outputs, recorded_outputs, replay_log
+
+    if not args.debug:  # the replay summary counts rejections; do not log each again
+        logging.getLogger("wingwatch.ingest").setLevel(logging.ERROR)
+    cfg = load_config(args.config) if args.config else None
+    speed = None if args.fast or args.speed is None else args.speed
+    sink = None
+    ctx = pub = None
+    if args.publish:
+        import zmq
+
+        from wingwatch.daemon.config import load_config as _lc
+        from wingwatch.daemon.service import check_binds
+
+        pcfg = cfg or _lc()
+        check_binds(pcfg, insecure=False)
+        ctx = zmq.Context()
+        pub = ctx.socket(zmq.PUB)
+        pub.setsockopt(zmq.LINGER, 0)
+        pub.bind(pcfg.endpoints.publish)
+
+        def sink(topic: bytes, payload: bytes) -> None:
+            try:
+                pub.send_multipart([topic, payload], flags=zmq.NOBLOCK)
+            except zmq.Again:
+                pass
+
+    prog = None
+    cb = None
+    if sys.stderr.isatty():
+        from rich.progress import Progress
+
+        prog = Progress(console=err_console, transient=True)
+        task = prog.add_task("replaying", total=1)
+        prog.start()
+
+        def cb(done: int, total: int) -> None:
+            prog.update(task, completed=done, total=max(total, 1))
+
+    try:
+        result = replay_log(args.log, config=cfg, t_from=args.t_from, t_to=args.t_to, speed=speed,
+                            sink=sink, progress=cb)
+    finally:
+        if prog is not None:
+            prog.stop()
+        if pub is not None:
+            pub.close()
+            ctx.term()
+    compare = None
+    if args.compare:
+        div = compare_outputs(recorded_outputs(args.log), result.outputs)
+        compare = {"identical": div is None,
+                   "first_divergence": None if div is None else {
+                       "index": div.index, "t": div.t, "topic": div.topic, "field": div.field,
+                       "recorded": repr(div.recorded), "replayed": repr(div.replayed),
+                       "message": div.describe()}}
+    summary = replay_summary(result, compare)
+    if args.json:
+        _print_json(summary)
+    else:
+        err_console.print(
+            f"replayed {summary['samples']} samples ({summary['source_s']:.1f} s of source time) in "
+            f"{summary['wall_s']:.2f} s: {summary['realtime_factor']:.0f}x real time; "
+            f"{summary['models_published']} models published, {summary['models_rejected']} rejected, "
+            f"{len(summary['warnings'])} warning events"
+        )
+        err_console.print(f"output digest {summary['output_digest']}")
+        if compare is not None:
+            err_console.print("compare: identical to the recorded outputs" if compare["identical"]
+                              else f"compare: {compare['first_divergence']['message']}")
+    if compare is not None and not compare["identical"]:
+        return 1
+    return 0
+
+
+# --------------------------------------------------------------------------------------------
 
 
 def _not_yet(name: str, issue: str) -> Callable[[argparse.Namespace], int]:
@@ -193,11 +302,28 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=_cmd_inspect)
 
+    p = sub.add_parser("replay", help="replay a recorded run through the same pipeline",
+                       description="Replay a recorded run through the same pipeline as the live "
+                                   "daemon; deterministic: same log and configuration, same outputs.")
+    p.add_argument("log", metavar="LOG", help="a log segment (.wwlog) or a run directory")
+    p.add_argument("--from", dest="t_from", type=float, metavar="T", help="start at source time T (s)")
+    p.add_argument("--to", dest="t_to", type=float, metavar="T", help="stop at source time T (s)")
+    pace = p.add_mutually_exclusive_group()
+    pace.add_argument("--fast", action="store_true", help="as fast as possible (the default)")
+    pace.add_argument("--speed", type=float, metavar="X", help="pace at X times real time")
+    p.add_argument("--config", metavar="FILE", help="replay with this configuration instead of the "
+                   "recorded one")
+    p.add_argument("--publish", action="store_true", help="also publish the outputs on the publish "
+                   "endpoint (for a monitor or a controller)")
+    p.add_argument("--compare", action="store_true", help="compare the outputs with the recorded "
+                   "ones; exit 1 on a divergence")
+    p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.set_defaults(func=_cmd_replay)
+
     _add_rig(sub)
     for name, text, issue in (
         ("monitor", "terminal monitor", "the publish and monitor issue"),
         ("calibrate", "identify the reference model from a pitch-up manoeuvre", "the calibration issue"),
-        ("replay", "replay a recorded run through the pipeline", "the replay issue"),
         ("demo", "the whole system on the virtual rig", "the replay and demo issue"),
         ("keys", "create CurveZMQ key pairs", "the hardening issue"),
     ):
