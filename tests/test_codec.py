@@ -114,7 +114,7 @@ def test_fuzz_arbitrary_bytes_never_crash(data):
 
 
 _values = st.one_of(
-    st.none(), st.booleans(), st.integers(min_value=-(2**63), max_value=2**64 - 1)  # what msgpack can carry,
+    st.none(), st.booleans(), st.integers(min_value=-(2**63), max_value=2**64 - 1),  # what msgpack can carry
     st.floats(allow_nan=True, allow_infinity=True), st.text(max_size=8), st.binary(max_size=96),
     st.lists(st.text(max_size=4), max_size=6),
 )
