@@ -1,0 +1,3 @@
+"""Watchers: drift detection, stale-model test, sensor health and curvature margin (advisory)."""
+
+__all__: list[str] = []
