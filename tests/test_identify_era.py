@@ -20,7 +20,8 @@ def random_system(seed=6, r=6, n_out=2, n_in=1):
     poles = []
     for _ in range(r // 2):
         rad, ang = rng.uniform(0.6, 0.95), rng.uniform(0.2, 2.5)
-        poles.append([[rad * np.cos(ang), -rad * np.sin(ang)], [rad * np.sin(ang), rad * np.cos(ang)]])
+        c, s_ = rad * np.cos(ang), rad * np.sin(ang)
+        poles.append([[c, -s_], [s_, c]])
     A0 = np.zeros((r, r))
     for i, blk in enumerate(poles):
         A0[2 * i : 2 * i + 2, 2 * i : 2 * i + 2] = blk

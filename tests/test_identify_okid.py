@@ -1,4 +1,4 @@
-"""OKID: observer Markov parameters by least squares and the recursion to system Markov parameters."""
+"""OKID: observer Markov parameters by least squares, then the recursion to system ones."""
 
 import numpy as np
 import pytest
@@ -19,7 +19,8 @@ def random_system(seed=6, r=6, n_out=2, n_in=1):
         )
     T = rng.standard_normal((r, r)) + 3 * np.eye(r)
     A = T @ A0 @ np.linalg.inv(T)
-    return A, rng.standard_normal((r, n_in)), rng.standard_normal((n_out, r)), rng.standard_normal((n_out, n_in))
+    B = rng.standard_normal((r, n_in))
+    return A, B, rng.standard_normal((n_out, r)), rng.standard_normal((n_out, n_in))
 
 
 def simulate(A, B, C, D, u, x0=None):
@@ -97,7 +98,8 @@ def test_okid_on_fir_system_against_python_control_markov():
 
 
 def test_system_markov_recursion_on_first_order_system():
-    # x = y - d u gives y(k) = a y(k-1) + (b - a d) u(k-1) + d u(k): Markov parameters Ybar_1 = [b - a d, a]
+    # x = y - d u gives y(k) = a y(k-1) + (b - a d) u(k-1) + d u(k),
+    # so the observer Markov parameters are Ybar_1 = [b - a d, a]
     a, b, d = 0.7, 2.0, 0.5
     obs = ObserverMarkov(
         D=np.array([[d]]),

@@ -256,8 +256,9 @@ class SavgolDifferentiator:
 class DelayLine:
     """Delay one or more channels by a whole number of samples, carrying the state explicitly.
 
-    The state holds exactly ``lag`` samples per channel (bounded memory); before the first frame it is filled
-    with that frame's first sample (a constant past, matching :func:`initial_state`).
+    The state holds exactly ``lag`` samples per channel (bounded memory); before the first
+    frame it is filled with that frame's first sample (a constant past, matching
+    :func:`initial_state`).
 
     Parameters
     ----------
@@ -292,7 +293,9 @@ class DelayLine:
         flat = x.ndim == 1
         x2 = x[:, None] if flat else x
         if x2.ndim != 2 or x2.shape[1] != self.n_channels:
-            raise ValueError(f"frame must have {self.n_channels} channel(s), got shape {x.shape}")
+            raise ValueError(
+                f"frame must have {self.n_channels} channel(s), got shape {x.shape}"
+            )
         n = x2.shape[0]
         if self.lag == 0 or n == 0:
             return x.copy()

@@ -49,7 +49,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.linalg import lapack
+from scipy.linalg import blas, lapack
 from scipy.stats import t as student_t
 
 from wingwatch.daemon.errors import IdentificationError
@@ -331,9 +331,9 @@ class RecursiveLeastSquares:
             Z = self._Q - (self.gate * self._nu_ss) * (Rf.T @ Rf)  # Q - gate nu_ss R
             _, info = lapack.dpotrf(Z, lower=0, clean=0)
             if info != 0:  # some direction is weakly excited: gate the forgetting
-                rtq, info1 = lapack.dtrtrs(Rf, self._Q, lower=0, trans=1)  # R_f^-T Q
-                X, info2 = lapack.dtrtrs(Rf, rtq.T, lower=0, trans=1)  # R_f^-T Q R_f^-1
-                if info1 == 0 and info2 == 0:
+                rtq = blas.dtrsm(1.0, Rf, self._Q, trans_a=1)  # R_f^-T Q
+                X = blas.dtrsm(1.0, Rf, rtq, side=1)  # R_f^-T Q R_f^-1
+                if math.isfinite(X.sum()):  # R_f invertible (always once prior or data exist)
                     nu, V, info3 = lapack.dsyevd(X, lower=0)  # X = V diag(nu) V^T
                     if info3 != 0:  # pragma: no cover - LAPACK convergence failure
                         raise IdentificationError(f"eigen-decomposition failed ({info3})")
@@ -346,6 +346,9 @@ class RecursiveLeastSquares:
                     return
         np.multiply(F, fc.root_decay, out=G[:q])  # lam^(n/2) F: exact exponential forgetting
 
+    # Triangular solves go through BLAS dtrsm rather than LAPACK dtrtrs: the OpenBLAS dtrtrs
+    # may start worker threads even for tiny matrices, which costs about a millisecond per call
+    # on a machine whose cores are busy (measured on the 2-core test host).
     def _solve(self) -> None:
         p = self.n_regressors
         Rf = self._F[:p, :p]
@@ -353,8 +356,8 @@ class RecursiveLeastSquares:
             diag = np.abs(np.diag(Rf))
             if diag.min() <= 1e-13 * diag.max() or diag.max() == 0.0:
                 return  # not yet determined: keep the previous estimate
-        theta, info = lapack.dtrtrs(Rf, self._F[:p, p:], lower=0)  # Theta = R_f^-1 z
-        if info == 0:
+        theta = blas.dtrsm(1.0, Rf, self._F[:p, p:])  # Theta = R_f^-1 z
+        if math.isfinite(theta.sum()):
             self._theta = theta
             self._solved = True
 
