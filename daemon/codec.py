@@ -46,7 +46,11 @@ __all__ = [
     "decode_array",
     "encode_message",
     "decode_message",
+    "decode_snapshot_request",
+    "encode_snapshot",
+    "encode_error_reply",
     "sensor_topic",
+    "REASON_BY_CODE",
 ]
 
 #: Schema version of inbound sensor frames.
@@ -351,16 +355,58 @@ def _from_wire(obj: Any) -> Any:
     return obj
 
 
-def encode_message(kind: str, body: dict[str, Any]) -> tuple[bytes, bytes]:
+def encode_message(kind: str, body: dict[str, Any], pub_seq: int | None = None) -> tuple[bytes, bytes]:
     """Encode an outbound message of ``kind`` (a key of :data:`TOPICS`) as ``(topic, payload)``.
 
-    Floats are written as float64 and map keys in the order given, so equal messages give equal
-    bytes (replay compares output frames byte for byte).
+    ``pub_seq`` numbers the messages of one kind (0, 1, 2, ...) so that a subscriber can count
+    what it missed (ZeroMQ's PUB drops silently for a subscriber whose queue is full). Floats are
+    written as float64 and map keys in the order given, so equal messages give equal bytes
+    (replay compares output frames byte for byte).
     """
     topic, version = TOPICS[kind]
-    msg = {"v": version, "kind": kind}
+    msg: dict[str, Any] = {"v": version, "kind": kind}
+    if pub_seq is not None:
+        msg["pub_seq"] = int(pub_seq)
     msg.update(_to_wire(body))
     return topic, msgpack.packb(msg, use_bin_type=True, use_single_float=False)
+
+
+SNAPSHOT_REQUEST_LIMIT = 4096
+
+
+def decode_snapshot_request(payload: bytes) -> str:
+    """Validate a snapshot request ``{"v": 1, "want": "snapshot"}``; returns what is wanted.
+
+    Raises FrameRejected (reason ``malformed``, ``schema_version`` or ``bad_field``).
+    """
+    msg = _unpack(payload, SNAPSHOT_REQUEST_LIMIT)
+    if not isinstance(msg, dict):
+        raise FrameRejected("malformed", "a snapshot request must be a msgpack map")
+    if msg.get("v") != OUT_SCHEMA:
+        raise FrameRejected("schema_version", f"snapshot request version must be {OUT_SCHEMA}")
+    want = msg.get("want")
+    if want not in ("snapshot",):
+        raise FrameRejected("bad_field", "field 'want' must be 'snapshot'")
+    extra = set(msg) - {"v", "want"}
+    if extra:
+        raise FrameRejected("bad_field", f"field '{sorted(extra)[0]}' is not part of a snapshot request")
+    return want
+
+
+def encode_snapshot(model: bytes | None, warnings: list[bytes], status: bytes | None) -> bytes:
+    """The snapshot reply: the last published model, active warnings and status, each the map
+    that was published (re-embedded, so one msgpack read gives everything)."""
+    def inner(p: bytes | None) -> Any:
+        return None if p is None else msgpack.unpackb(p, raw=False)
+
+    msg = {"v": OUT_SCHEMA, "kind": "snapshot", "model": inner(model),
+           "warnings": [inner(w) for w in warnings], "status": inner(status)}
+    return msgpack.packb(msg, use_bin_type=True)
+
+
+def encode_error_reply(reason: str, detail: str) -> bytes:
+    return msgpack.packb({"v": OUT_SCHEMA, "kind": "error", "reason": reason, "detail": detail},
+                         use_bin_type=True)
 
 
 def decode_message(payload: bytes, max_bytes: int = 64 << 20) -> dict[str, Any]:

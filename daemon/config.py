@@ -468,6 +468,13 @@ def config_from_dict(raw: dict[str, Any], source: str = "<dict>") -> Config:
         fsync_interval_s=ck.number(r, "recorder.", "fsync_interval_s", nonneg=True),
     )
 
+    pb = raw.get("publish", {})
+    if not isinstance(pb, dict):
+        raise ck.fail("publish", "must be a table")
+    ck.no_unknown(pb, "publish.", {"sndhwm"})
+    if "sndhwm" in pb:
+        ck.integer(pb, "publish.", "sndhwm", minimum=1)
+
     later = {}
     for key in ("identify", "watch", "publish"):
         later[key] = raw.get(key, {})

@@ -32,7 +32,7 @@ from wingwatch.daemon.ingest import Ingest, IngestVerdict
 from wingwatch.daemon.recorder import LogWriter
 from wingwatch.daemon.version import __version__
 
-__all__ = ["Output", "Stage", "Pipeline", "Session", "ADVISORY", "OUTPUT_LOG_KIND"]
+__all__ = ["Output", "Stage", "Pipeline", "Session", "LastValues", "ADVISORY", "OUTPUT_LOG_KIND"]
 
 #: The caution every warning and the status heartbeat carry (BRIEF: Safety).
 ADVISORY = (
@@ -56,8 +56,8 @@ class Output:
     kind: str
     body: dict[str, Any]
 
-    def encode(self) -> tuple[bytes, bytes]:
-        return encode_message(self.kind, self.body)
+    def encode(self, pub_seq: int | None = None) -> tuple[bytes, bytes]:
+        return encode_message(self.kind, self.body, pub_seq)
 
 
 class Stage(Protocol):
@@ -136,6 +136,28 @@ Sink = Callable[[bytes, bytes], None]
 
 
 @dataclass
+class LastValues:
+    """What a late joiner needs at once: the model in service, the active warnings, the last
+    status (raw payloads as published, so the snapshot is exactly what subscribers saw)."""
+
+    model: bytes | None = None
+    warnings: dict[str, bytes] = field(default_factory=dict)
+    status: bytes | None = None
+
+    def observe(self, kind: str, body: dict[str, Any], payload: bytes) -> None:
+        if kind == "model" and body.get("status") in ("accepted", "reference"):
+            self.model = payload
+        elif kind == "warning":
+            wid = str(body.get("warning_id", ""))
+            if body.get("event") == "cleared":
+                self.warnings.pop(wid, None)
+            else:
+                self.warnings[wid] = payload
+        elif kind == "status":
+            self.status = payload
+
+
+@dataclass
 class Session:
     """A pipeline with its recorder and output sink: what the daemon loop and replay drive.
 
@@ -152,6 +174,8 @@ class Session:
     recorder: LogWriter | None = None
     sink: Sink | None = None
     outputs_sent: int = 0
+    last: LastValues = field(default_factory=LastValues)
+    pub_seq: dict[str, int] = field(default_factory=dict)
     started_wall: float = field(default_factory=time.time)
     first_wall: float | None = None
     _last_status_counters: dict[str, int] = field(default_factory=dict)
@@ -185,7 +209,10 @@ class Session:
         return self.inbound(parts, rec.t_recv)
 
     def emit(self, out: Output, t_wall: float) -> None:
-        topic, payload = out.encode()
+        n = self.pub_seq.get(out.kind, 0)  # per kind: decision outputs stay deterministic
+        self.pub_seq[out.kind] = n + 1
+        topic, payload = out.encode(n)
+        self.last.observe(out.kind, out.body, payload)
         if self.recorder is not None:
             self.recorder.append(OUTPUT_LOG_KIND[out.kind], topic, payload, t_wall)
         if self.sink is not None:
@@ -215,6 +242,7 @@ class Session:
             "uptime_s": now_wall - self.started_wall,
             "t_sample": self.pipeline.last_sample_t,
             "lag_s": self.lag_s(now_wall),
+            "period_s": self.pipeline.config.status_period_s,
             "counters": counters,
             "rates": rates,
             "flow_off_samples": self.pipeline.channel_map.flow_off_samples,

@@ -23,8 +23,9 @@ from typing import Any, Iterable
 
 import zmq
 
+from wingwatch.daemon.codec import decode_snapshot_request, encode_error_reply, encode_snapshot
 from wingwatch.daemon.config import Config, endpoint_is_loopback
-from wingwatch.daemon.errors import ConfigError
+from wingwatch.daemon.errors import ConfigError, FrameRejected
 from wingwatch.daemon.pipeline import Pipeline, Session
 from wingwatch.daemon.recorder import LogWriter
 
@@ -119,13 +120,17 @@ class Daemon:
         )
         self.sub = self.ctx.socket(zmq.SUB)
         self.pub = self.ctx.socket(zmq.PUB)
+        self.rep = self.ctx.socket(zmq.REP)
         try:
+            self.rep.setsockopt(zmq.LINGER, 0)
+            self.rep.setsockopt(zmq.MAXMSGSIZE, 65536)
+            self.rep.bind(config.endpoints.snapshot)
             self.sub.setsockopt(zmq.LINGER, 0)
             self.sub.setsockopt(zmq.RCVHWM, 100_000)
             self.sub.setsockopt(zmq.MAXMSGSIZE, 16 * config.limits.max_payload_bytes)
             self.sub.setsockopt(zmq.SUBSCRIBE, b"")
             self.pub.setsockopt(zmq.LINGER, 0)
-            self.pub.setsockopt(zmq.SNDHWM, 10_000)
+            self.pub.setsockopt(zmq.SNDHWM, int(config.publish.get("sndhwm", 1000)))
             self.sub.bind(config.endpoints.sensor)
             self.pub.bind(config.endpoints.publish)
         except zmq.ZMQError as exc:
@@ -137,12 +142,39 @@ class Daemon:
         self.session = Session(Pipeline(config), recorder=self.recorder, sink=self._send)
         self.publish_drops = 0
         self.messages = 0
+        self.snapshot_requests = 0
+        self.snapshot_rejected = 0
 
     def _send(self, topic: bytes, payload: bytes) -> None:
+        # PUB never blocks: a subscriber whose queue (SNDHWM/RCVHWM) is full loses the message
+        # silently, and counts it itself from the gap in pub_seq. Ingest is never held up.
         try:
             self.pub.send_multipart([topic, payload], flags=zmq.NOBLOCK)
-        except zmq.Again:
+        except zmq.Again:  # not expected for PUB; counted all the same
             self.publish_drops += 1
+
+    def _serve_snapshot(self) -> None:
+        """Answer one snapshot request (REP: every request gets exactly one reply)."""
+        try:
+            parts = self.rep.recv_multipart(flags=zmq.NOBLOCK)
+        except zmq.Again:
+            return
+        try:
+            if len(parts) != 1:
+                raise FrameRejected("malformed", "a snapshot request is one message part")
+            decode_snapshot_request(parts[0])
+        except FrameRejected as exc:
+            self.snapshot_rejected += 1
+            reply = encode_error_reply(exc.reason, exc.detail)
+        else:
+            self.snapshot_requests += 1
+            last = self.session.last
+            reply = encode_snapshot(last.model, list(last.warnings.values()), last.status)
+        self.rep.send(reply)
+
+    def _extra_status(self) -> dict[str, Any]:
+        return {"publish_drops": self.publish_drops, "snapshot_requests": self.snapshot_requests,
+                "snapshot_rejected": self.snapshot_rejected}
 
     @property
     def log_path(self) -> Path | None:
@@ -157,6 +189,7 @@ class Daemon:
         """Run until :meth:`stop`, ``duration_s`` of wall time or ``max_messages``; return a summary."""
         poller = zmq.Poller()
         poller.register(self.sub, zmq.POLLIN)
+        poller.register(self.rep, zmq.POLLIN)
         period = self.config.status_period_s
         start = time.monotonic()
         next_status = start
@@ -166,11 +199,14 @@ class Daemon:
                 if duration_s is not None and now - start >= duration_s:
                     break
                 if now >= next_status:
-                    self.session.status(time.time(), {"publish_drops": self.publish_drops})
+                    self.session.status(time.time(), self._extra_status())
                     next_status = now + period
                 timeout = max(0, min(_POLL_MS, int((next_status - now) * 1000)))
-                if not poller.poll(timeout):
+                ready = dict(poller.poll(timeout))
+                if not ready:
                     continue
+                if self.rep in ready:
+                    self._serve_snapshot()
                 for _ in range(_DRAIN_MAX):
                     try:
                         parts = self.sub.recv_multipart(flags=zmq.NOBLOCK)
@@ -182,7 +218,7 @@ class Daemon:
                         self.stop_event.set()
                         break
         finally:
-            self.session.status(time.time(), {"publish_drops": self.publish_drops, "final": True})
+            self.session.status(time.time(), {**self._extra_status(), "final": True})
         return self.summary()
 
     def summary(self) -> dict[str, Any]:
@@ -193,7 +229,7 @@ class Daemon:
         return out
 
     def close(self) -> None:
-        for s in (getattr(self, "sub", None), getattr(self, "pub", None)):
+        for s in (getattr(self, "sub", None), getattr(self, "pub", None), getattr(self, "rep", None)):
             if s is not None:
                 s.close(linger=0)
         if getattr(self, "recorder", None) is not None:
