@@ -113,7 +113,7 @@ def test_killed_daemon_is_reported_lost_within_three_periods(cfg, zctx):
         assert poll_until(feed, lambda: feed.lost, timeout_s=10 * cfg.status_period_s)
         # the last heartbeat is the 'final' one sent at stop; loss must be declared within
         # three periods of it (plus one period of polling slack)
-        assert time.monotonic() - stopped <= 4 * cfg.status_period_s
+        assert time.monotonic() - stopped <= 3 * cfg.status_period_s + 0.5  # 0.5 s: polling slack under load
         assert events == [True]
     finally:
         feed.close()
