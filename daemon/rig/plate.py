@@ -73,7 +73,7 @@ class Article:
     name: str = "Quillfin strip"
     chord_m: float = 0.10
     span_m: float = 0.30
-    thickness_m: float = 1.0e-3
+    thickness_m: float = 0.6e-3
     youngs_modulus_pa: float = 2.40e9
     density_kg_m3: float = 1200.0
     poisson_ratio: float = 0.37
@@ -106,13 +106,13 @@ class Fluid:
 class Numerics:
     """Discretisation: panels, shed-vortex placement, wake store, steps per output sample."""
 
-    n_panels: int = 20
+    n_panels: int = 32
     shed_fraction: float = 0.25
     substeps: int = 1
     wake_raw: int = 160
     wake_merge: int = 4
-    wake_level_capacity: int = 48
-    wake_levels: int = 5
+    wake_level_capacity: int = 24
+    wake_levels: int = 6
 
 
 @dataclass(frozen=True)
@@ -188,7 +188,7 @@ class PlateSimulator:
 
     def __init__(self, article: Article = Article(), fluid: Fluid = Fluid(),
                  numerics: Numerics = Numerics(), viscous: ViscousModel = ViscousModel(),
-                 flow_speed: float = 0.3, dt: float = 1.0e-3) -> None:
+                 flow_speed: float = 0.4, dt: float = 1.0e-3) -> None:
         self.article = article
         self.fluid = fluid
         self.numerics = numerics
@@ -398,8 +398,8 @@ class PlateSimulator:
             R[N + 1:] = rho * P @ T @ Gk - M @ (c1 * Vk + Ak) - C @ Vk
             R[N + 1:, o["att"]] += load
             R[N + 1:, o["cf"]:o["cf"] + nm] += self.mass_struct - self.spin_stiff
-        lu = scipy.linalg.lu_factor(A)
-        Z = scipy.linalg.lu_solve(lu, R)  # z = Z @ s
+        lu = scipy.linalg.lu_factor(A, check_finite=False)
+        Z = scipy.linalg.lu_solve(lu, R, check_finite=False)  # z = Z @ s
         # ---- outputs y = B @ s: new state block, shed vortex, lift / cos(alpha), gauge curvature
         ns = o["w"]
         B = np.zeros((ns + 4, ne))
@@ -424,7 +424,9 @@ class PlateSimulator:
         B0 = B.copy()
         B0[:, o["cf"]:o["cf"] + nm] = 0.0
         self._B = B
-        self._B2 = np.vstack([B0, Bc])
+        self._B0 = B0
+        # Bc only reads q_n and q_{n-1}, which sit next to each other in s
+        self._Bcq = np.ascontiguousarray(Bc[:, o["q"]:o["q"] + 2 * nm])
         self._off = o
         self._system = A
         # steady problem (for initial states): same rows without time derivatives and wake
@@ -539,9 +541,10 @@ class PlateSimulator:
         o = self._off
         N, nm = self.geometry.n_panels, self.n_modes
         s = self._s
-        B2 = self._B2
+        B0 = self._B0
+        Bcq = self._Bcq
         ns = o["w"]
-        ny = ns + 4
+        iq, iq2 = o["q"], o["q"] + 2 * nm
         wake = self.wake
         U = self.flow_speed
         step_len = U * self.dt
@@ -558,8 +561,9 @@ class PlateSimulator:
             s[iat] = alpha_dot[i]
             s[iatt] = alpha_ddot[i]
             # spin softening/stiffening alpha_t^2 (M - K_g) q, with q extrapolated (2 q_n - q_{n-1})
-            yy = B2 @ s
-            y = yy[:ny] + spin[i] * yy[ny:]
+            y = B0 @ s
+            if nm and spin[i] != 0.0:
+                y += spin[i] * (Bcq @ s[iq:iq2])
             s[:ns] = y[:ns]
             wake.shed_and_convect(x_shed, y[ns], step_len)
             lift[i] = y[ns + 1] * cos_a[i]

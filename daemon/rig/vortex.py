@@ -62,8 +62,10 @@ class PanelGeometry:
     bound_influence : ndarray
         a_ij, the upward velocity at collocation point i from a unit vortex on panel j.
     cumulative : ndarray
-        Lower-triangular ones: the potential jump at panel j is ``sum_{k <= j} Gamma_k``
-        (Katz & Plotkin (2001) eq. 13.37).
+        T with ``(T Gamma)_j`` the potential jump averaged over panel j: Katz & Plotkin (2001)
+        eq. 13.37 take ``sum_{k <= j} Gamma_k`` (the jump downstream of the panel's vortex); the
+        exact panel mean of the lumped-vortex jump is ``sum_{k < j} Gamma_k + 3/4 Gamma_j``, which
+        removes an O(h) error in the apparent-mass lift (see docs/rig.md).
     """
 
     def __init__(self, chord: float, n_panels: int) -> None:
@@ -80,7 +82,8 @@ class PanelGeometry:
         self.x_centre = x0 + 0.5 * self.h
         self.panel_edges = np.append(x0, self.chord)
         self.bound_influence = _INV_2PI / np.subtract.outer(self.x_vortex, self.x_colloc).T
-        self.cumulative = np.tril(np.ones((self.n_panels, self.n_panels)))
+        # panel-mean potential jump: sum_{k<j} Gamma_k + (3/4) Gamma_j (vortex at the quarter point)
+        self.cumulative = np.tril(np.ones((self.n_panels, self.n_panels)), -1) + 0.75 * np.eye(self.n_panels)
 
     def wake_influence(self, x_wake: float) -> np.ndarray:
         """Upward velocity at the collocation points from a unit vortex at ``x_wake``."""
@@ -119,10 +122,15 @@ class FlatWake:
         Vortices held by each amalgamated level before its oldest ``merge`` move on.
     levels : int
         Number of amalgamated levels; beyond the last one vortices are dropped.
+    cheb_tol : float
+        Target relative error of the far-wake Chebyshev evaluation.
+    batch : int
+        Groups merged at once (amalgamation runs every ``merge * batch`` steps).
     """
 
     def __init__(self, x_colloc: np.ndarray, chord: float, raw_count: int = 160, merge: int = 4,
-                 level_capacity: int = 48, levels: int = 5, cheb_tol: float = 1e-7) -> None:
+                 level_capacity: int = 24, levels: int = 6, cheb_tol: float = 1e-7,
+                 batch: int = 8) -> None:
         if raw_count < 1 or merge < 2 or level_capacity < 1 or levels < 0:
             raise ValueError("wake store sizes must be positive (merge at least 2)")
         self.x_colloc = np.asarray(x_colloc, dtype=float)
@@ -132,8 +140,11 @@ class FlatWake:
         self.level_capacity = int(level_capacity)
         self.levels = int(levels)
         self.cheb_tol = float(cheb_tol)
-        self.capacity = self.raw_count + self.merge + self.levels * (self.level_capacity + self.merge) + 4
-        self._trigger = self.raw_count + self.merge if self.levels else self.raw_count + 1
+        self.batch = int(batch)
+        span = self.merge * self.batch
+        self.capacity = self.raw_count + span + self.levels * (self.level_capacity + span) + 4
+        self._trigger = self.raw_count + span if self.levels else self.raw_count + 1
+        self._max_raw = self.raw_count + span
         self._grid_key = None
         self.reset()
 
@@ -163,7 +174,7 @@ class FlatWake:
     def _grid(self, x_new: float, step: float):
         key = (x_new, step)
         if key != self._grid_key:
-            a = np.arange(self.raw_count + self.merge - 1, -1, -1, dtype=float)  # ages, oldest first
+            a = np.arange(self._max_raw - 1, -1, -1, dtype=float)  # ages, oldest first
             x_raw = x_new + (a + 1.0) * step
             self._raw_table = _INV_2PI / np.subtract.outer(x_raw, self.x_colloc).T
             # Chebyshev proxy points for the far levels, chosen for the raw zone's length
@@ -176,7 +187,7 @@ class FlatWake:
                 k = np.arange(P)
                 nodes = 0.5 * c * (1.0 - np.cos(np.pi * (k + 0.5) / P))  # Chebyshev points on [0, c]
                 self._cheb_nodes = nodes[:, None]
-                self._cheb_interp = _lagrange_matrix(nodes, self.x_colloc)
+                self._cheb_interp_scaled = _INV_2PI * _lagrange_matrix(nodes, self.x_colloc)
             else:
                 self._cheb_nodes = None
             self._grid_key = key
@@ -188,29 +199,24 @@ class FlatWake:
         if n == 0:
             return np.zeros(self.x_colloc.size)
         c0 = self.counts[0]
-        g = self.g
-        D = self.D
-        fast = self._uniform >= c0 and self._last_step is not None
-        if fast:
-            table = self._grid(*self._last_step)
-            v = np.dot(table[:, table.shape[1] - c0:], g[n - c0:n])
-            self.fast_raw = True
-        else:
-            d = (self.xi[n - c0:n] + D) - self._col
-            v = np.dot(1.0 / d, g[n - c0:n]) * _INV_2PI
-            self.fast_raw = False
         nf = n - c0
-        if nf:
-            xf = self.xi[:nf] + D
-            nodes = self._cheb_nodes if fast else None
-            if nodes is not None:
-                u = np.dot(1.0 / (xf - nodes), g[:nf]) * _INV_2PI
-                v = v + self._cheb_interp @ u
-                self.fast_far = True
-            else:
-                v = v + np.dot(1.0 / (xf - self._col), g[:nf]) * _INV_2PI
-                self.fast_far = False
-        return v
+        g = self.g
+        if self._uniform >= c0 and self._last_step is not None:
+            table = self._raw_table if self._last_step == self._grid_key else self._grid(*self._last_step)
+            v = np.dot(table[:, table.shape[1] - c0:], g[nf:n])
+            self.fast_raw = True
+            if nf:
+                nodes = self._cheb_nodes
+                if nodes is not None:
+                    u = np.dot(1.0 / ((self.xi[:nf] + self.D) - nodes), g[:nf])
+                    v += np.dot(self._cheb_interp_scaled, u)
+                    self.fast_far = True
+                else:
+                    v += np.dot(1.0 / ((self.xi[:nf] + self.D) - self._col), g[:nf]) * _INV_2PI
+                    self.fast_far = False
+            return v
+        self.fast_raw = self.fast_far = False
+        return np.dot(1.0 / ((self.xi[:n] + self.D) - self._col), g[:n]) * _INV_2PI
 
     def normal_velocity_direct(self) -> np.ndarray:
         """Reference evaluation of the same upwash, every vortex directly (for checks)."""
@@ -237,43 +243,51 @@ class FlatWake:
 
     # ----------------------------------------------------------------- bookkeeping
     def _amalgamate(self) -> None:
-        m = self.merge
+        # batched: once a level holds ``cap + merge * batch`` vortices, its oldest ``merge * batch``
+        # become ``batch`` vortices of the next level (vectorised with one reshape)
+        m, B = self.merge, self.batch
         level = 0
         x_te = self.chord
         while level < self.levels:
             cap = self.raw_count if level == 0 else self.level_capacity
-            if self.counts[level] < cap + m:
+            if self.counts[level] < cap + m * B:
                 break
             i0 = self.n - sum(self.counts[: level + 1])
-            xs = self.xi[i0:i0 + m]
-            gs = self.g[i0:i0 + m]
+            k = m * B
+            xs = self.xi[i0:i0 + k].reshape(B, m)
+            gs = self.g[i0:i0 + k].reshape(B, m)
             w = np.abs(gs)
-            wsum = float(w.sum())
-            xm = float(xs @ w / wsum) if wsum > 0.0 else float(xs.mean())
-            # bound on the change of upwash at any collocation point, see docs/rig.md
-            r = float(xs.min()) + self.D - x_te
-            self.merge_error_bound += _INV_2PI * wsum * float(xs.max() - xs.min()) / (r * r)
-            gm = float(gs.sum())
+            wsum = w.sum(axis=1)
+            safe = np.where(wsum > 0.0, wsum, 1.0)
+            xm = np.where(wsum > 0.0, (xs * w).sum(axis=1) / safe, xs.mean(axis=1))
+            gm = gs.sum(axis=1)
+            # bound on the change of upwash at any collocation point (docs/rig.md): a vortex moved
+            # by at most the group's extent l changes the upwash at distance >= r by |g| l / (2 pi r^2)
+            r = xs[:, -1] + self.D - x_te
+            self.merge_error_bound += float(_INV_2PI * np.sum(wsum * (xs[:, 0] - xs[:, -1]) / (r * r)))
             n = self.n
-            self.xi[i0 + 1:n - m + 1] = self.xi[i0 + m:n]
-            self.g[i0 + 1:n - m + 1] = self.g[i0 + m:n]
-            self.xi[i0] = xm
-            self.g[i0] = gm
-            self.n = n - m + 1
-            self.counts[level] -= m
-            self.counts[level + 1] += 1
+            tail_x = self.xi[i0 + k:n].copy()
+            tail_g = self.g[i0 + k:n].copy()
+            self.xi[i0:i0 + B] = xm
+            self.g[i0:i0 + B] = gm
+            self.xi[i0 + B:i0 + B + tail_x.size] = tail_x
+            self.g[i0 + B:i0 + B + tail_g.size] = tail_g
+            self.n = n - k + B
+            self.counts[level] -= k
+            self.counts[level + 1] += B
             level += 1
         last = self.levels
         cap = self.raw_count if last == 0 else self.level_capacity
-        if self.counts[last] > cap:
-            g0 = float(self.g[0])
-            self.dropped_circulation += g0
-            self.drop_error_bound += _INV_2PI * abs(g0) / (self.xi[0] + self.D - x_te)
+        drop = self.counts[last] - cap
+        if drop > 0:
+            g0 = self.g[:drop]
+            self.dropped_circulation += float(g0.sum())
+            self.drop_error_bound += float(_INV_2PI * np.sum(np.abs(g0) / (self.xi[:drop] + self.D - x_te)))
             n = self.n
-            self.xi[: n - 1] = self.xi[1:n]
-            self.g[: n - 1] = self.g[1:n]
-            self.n = n - 1
-            self.counts[last] -= 1
+            self.xi[: n - drop] = self.xi[drop:n].copy()
+            self.g[: n - drop] = self.g[drop:n].copy()
+            self.n = n - drop
+            self.counts[last] -= drop
 
     @property
     def total_circulation(self) -> float:

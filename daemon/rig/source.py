@@ -1,0 +1,233 @@
+"""The virtual rig as a frame source: scenario -> physics -> sensors -> numbered sample frames.
+
+It streams like a tunnel DAQ: block-sampled frames of ``frame_samples`` samples of the five raw
+channels, numbered by ``seq``, stamped with the source clock ``t0`` (seconds, first sample of the
+frame; the run's first sample is at t = 0). Lost-frame events skip sequence numbers. Each frame also
+carries the noise-free truth. The run is deterministic: one ``numpy.random.SeedSequence`` (M. E.
+O'Neill, "PCG: A family of simple fast space-efficient statistically good algorithms for random
+number generation", 2014, the default generator's family) is spawned into a motion stream and a
+sensor stream, so a seed fixes every value bit for bit and nothing reads the wall clock.
+
+Parameter schedules: a flow-speed or stiffness event moves its parameter from the present value to
+the new one along the quintic smoothed ramp of :func:`.scenario.smooth_step` over ``ramp_s``,
+sampled as a staircase of :data:`PARAM_HOLD_S` holds; the simulator's step map is reassembled once
+per hold (see docs/rig.md for the cost and the error).
+
+Examples
+--------
+>>> rig = VirtualRig("calibration", duration_s=0.05)
+>>> [f.seq for f in rig.frames()]
+[0, 1, 2, 3, 4]
+>>> rig.channels
+('pitch_enc', 'balance_lift', 'q_pitot', 'strain_root', 'strain_mid')
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+
+from wingwatch.daemon.errors import ConfigError
+from wingwatch.daemon.rig.plate import PlateSimulator
+from wingwatch.daemon.rig.scenario import (CHANNELS, Motion, Ramp, Scenario, load_scenario,
+                                           smooth_step, validate_physics)
+from wingwatch.daemon.rig.sensors import SensorModel
+
+__all__ = ["RigFrame", "VirtualRig", "TRUTH_KEYS", "PARAM_HOLD_S"]
+
+#: during a flow-speed or stiffness ramp the parameter is held constant over steps of this length
+PARAM_HOLD_S = 0.01
+
+#: per-sample truth arrays carried by every frame
+TRUTH_KEYS = ("t", "alpha", "alpha_dot", "alpha_ddot", "C_L", "lift_n", "kappa_root", "kappa_mid",
+              "strain_root_ue", "strain_mid_ue", "flow_speed", "q_pa", "stiffness_factor",
+              "added_mass_kg", "reynolds")
+
+
+@dataclass(frozen=True)
+class RigFrame:
+    """One block of samples. ``samples`` has shape (n, 5) in :data:`CHANNELS` order.
+
+    ``truth`` maps each of :data:`TRUTH_KEYS` to an array of n values, plus ``lost`` (bool: the
+    frame was dropped by a lost-frames event, only seen with ``include_lost=True``) and ``events``
+    (list of dicts of the events that start within this frame).
+    """
+
+    seq: int
+    t0: float
+    samples: np.ndarray
+    truth: dict
+
+
+class _Schedule:
+    """Piecewise parameter history: smoothed ramps between the values set by events."""
+
+    def __init__(self, initial: float, changes) -> None:
+        self.initial = float(initial)
+        self.segments = []  # (t_start, ramp_s, from, to)
+        v = self.initial
+        for t, ramp, to in sorted(changes, key=lambda c: c[0]):
+            self.segments.append((t, ramp, v, float(to)))
+            v = float(to)
+
+    def __call__(self, t: np.ndarray) -> np.ndarray:
+        out = np.full(t.shape, self.initial)
+        for t0, ramp, a, b in self.segments:
+            if ramp > 0.0:
+                s, _, _ = smooth_step((t - t0) / ramp)
+            else:
+                s = (t >= t0).astype(float)
+            out = np.where(t >= t0, a + (b - a) * s, out)
+        return out
+
+
+class VirtualRig:
+    """A scripted run of the virtual rig.
+
+    Parameters
+    ----------
+    scenario : Scenario or str or Path
+        A loaded scenario, or a name / path for :func:`.scenario.load_scenario`.
+    seed, rate_hz, duration_s : optional
+        Overrides of the scenario's values.
+    """
+
+    def __init__(self, scenario: Scenario | str | Path, seed: int | None = None,
+                 rate_hz: float | None = None, duration_s: float | None = None) -> None:
+        sc = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
+        if seed is not None:
+            if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
+                raise ConfigError(f"seed must be a non-negative integer, not {seed!r}")
+            sc = replace(sc, seed=seed)
+        if rate_hz is not None:
+            if not (isinstance(rate_hz, (int, float)) and math.isfinite(rate_hz) and 1.0 <= rate_hz <= 1e5):
+                raise ConfigError(f"rate_hz must be a sample rate in [1, 100000] Hz, not {rate_hz!r}")
+            sc = replace(sc, rate_hz=float(rate_hz))
+        if duration_s is not None:
+            if not (isinstance(duration_s, (int, float)) and math.isfinite(duration_s) and duration_s > 0):
+                raise ConfigError(f"duration_s must be a positive number of seconds, not {duration_s!r}")
+            sc = replace(sc, duration_s=float(duration_s),
+                         events=tuple(e for e in sc.events if e.t_s <= duration_s))
+        validate_physics(sc)
+        self.scenario = sc
+        self.seed = sc.seed
+        self.rate_hz = sc.rate_hz
+        self.frame_samples = sc.frame_samples
+        self.duration_s = sc.duration_s
+        self.channels = CHANNELS
+        self.n_samples = int(round(sc.duration_s * sc.rate_hz))
+        self.n_frames = -(-self.n_samples // self.frame_samples)
+
+    @property
+    def events(self) -> list[dict]:
+        """The scripted events as dicts (``t_s``, ``kind`` and the kind's parameters)."""
+        return [e.as_dict() for e in self.scenario.events]
+
+    def _lost_seqs(self) -> set[int]:
+        lost: set[int] = set()
+        F, rate = self.frame_samples, self.rate_hz
+        for e in self.scenario.events:
+            if e.kind == "lost-frames":
+                first = math.ceil(e.t_s * rate / F - 1e-9)
+                lost.update(range(first, first + e.get("count")))
+        return lost
+
+    def make_simulator(self) -> PlateSimulator:
+        sc = self.scenario
+        return PlateSimulator(sc.article, sc.fluid, sc.numerics, sc.viscous,
+                              flow_speed=sc.flow_speed_m_s, dt=1.0 / sc.rate_hz)
+
+    def frames(self, include_lost: bool = False) -> Iterator[RigFrame]:
+        """Generate the run's frames in order (a fresh, identical run on every call)."""
+        sc = self.scenario
+        ss = np.random.SeedSequence(sc.seed)
+        motion_ss, sensor_ss = ss.spawn(2)
+        creep = [Ramp(e.t_s, e.get("duration_s"), e.get("rate_deg_per_s") * e.get("duration_s"))
+                 for e in sc.events if e.kind == "pitch-creep"]
+        motion = Motion(sc.motion, np.random.default_rng(motion_ss), creep)
+        sensors = SensorModel(sc.sensors, sc.events, np.random.default_rng(sensor_ss))
+        speed = _Schedule(sc.flow_speed_m_s, [(e.t_s, e.get("ramp_s"), e.get("speed_m_s"))
+                                              for e in sc.events if e.kind == "flow-speed"])
+        stiff = _Schedule(1.0, [(e.t_s, e.get("ramp_s"), e.get("factor"))
+                                for e in sc.events if e.kind == "stiffness"])
+        added = [(e.t_s, e.get("mass_kg"), e.get("at_chord")) for e in sc.events if e.kind == "added-mass"]
+        sim = self.make_simulator()
+        sub = sc.numerics.substeps
+        rate = self.rate_hz
+        dt = 1.0 / rate
+        a0 = motion.evaluate(np.array([0.0]))[0][0]
+        sim.reset(float(a0))
+        lost = self._lost_seqs()
+        art, fl = sc.article, sc.fluid
+        span, chord = art.span_m, art.chord_m
+        half_t_ue = 0.5 * art.thickness_m * 1e6
+        F = self.frame_samples
+        # work in blocks of whole frames (about half a second) so the per-sample Python cost is the
+        # physics step alone; the noise stream is drawn sample by sample in order, so blocking does
+        # not change any value
+        block = max(1, 500 // F)
+        for first in range(0, self.n_frames, block):
+            i0 = first * F
+            n = min(block * F, self.n_samples - i0)
+            t = (i0 + np.arange(n)) / rate
+            # kinematics at every internal step; the state before sample 0 is the steady one at -dt
+            ts = (i0 - 1 + (np.arange(n * sub) + 1.0) / sub) / rate
+            a, ad, add = motion.evaluate(ts)
+            # ramps advance in a staircase of PARAM_HOLD_S holds (the step map is reassembled
+            # once per hold, not once per sample; docs/rig.md bounds the difference)
+            th = np.floor(t / PARAM_HOLD_S + 1e-9) * PARAM_HOLD_S
+            U = speed(th)
+            kf = stiff(th)
+            ma = np.zeros(n)
+            at = np.full(n, 0.9)
+            for te, m, xa in added:
+                on = t >= te
+                ma = np.where(on, m, ma)
+                at = np.where(on, xa, at)
+            lift = np.empty(n)
+            kap = np.empty((n, 2))
+            # stretches of constant parameters go through the simulator's fast path
+            change = np.flatnonzero((np.diff(U) != 0) | (np.diff(kf) != 0) | (np.diff(ma) != 0)
+                                    | (np.diff(at) != 0)) + 1
+            bounds = np.concatenate(([0], change, [n]))
+            for j, k in zip(bounds[:-1], bounds[1:]):
+                sim.set_parameters(flow_speed=float(U[j]), stiffness_factor=float(kf[j]),
+                                   added_mass=float(ma[j]) / span, added_mass_at=float(at[j]))
+                sl = slice(j * sub, k * sub)
+                if sub == 1:
+                    lj, kj = sim.run(a[sl], ad[sl], add[sl])
+                else:
+                    lj, kj = sim.run_substeps(a[sl], ad[sl], add[sl])
+                lift[j:k] = lj
+                kap[j:k] = kj
+            alpha = a[sub - 1::sub]
+            q = 0.5 * fl.density_kg_m3 * U * U
+            lift_n = lift * span
+            eps_root = kap[:, 0] * half_t_ue
+            eps_mid = kap[:, 1] * half_t_ue
+            samples = sensors.read(t, alpha, lift_n, q, eps_root, eps_mid)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                cl = np.where(q > 0, lift / (q * chord), 0.0)
+            cols = {
+                "t": t, "alpha": alpha, "alpha_dot": ad[sub - 1::sub], "alpha_ddot": add[sub - 1::sub],
+                "C_L": cl, "lift_n": lift_n, "kappa_root": kap[:, 0].copy(),
+                "kappa_mid": kap[:, 1].copy(), "strain_root_ue": eps_root, "strain_mid_ue": eps_mid,
+                "flow_speed": U, "q_pa": q, "stiffness_factor": kf, "added_mass_kg": ma,
+                "reynolds": U * chord / fl.kinematic_viscosity_m2_s,
+            }
+            for j0 in range(0, n, F):
+                seq = first + j0 // F
+                is_lost = seq in lost
+                if is_lost and not include_lost:
+                    continue
+                sl = slice(j0, min(j0 + F, n))
+                t_start = float(t[j0])
+                truth = {key: val[sl].copy() for key, val in cols.items()}
+                truth["lost"] = is_lost
+                truth["events"] = [e.as_dict() for e in sc.events
+                                   if t_start <= e.t_s < t_start + F / rate]
+                yield RigFrame(seq=seq, t0=t_start, samples=samples[sl].copy(), truth=truth)
