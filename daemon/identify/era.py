@@ -17,6 +17,9 @@ tail sum is the quantity that bounds the error of balanced truncation (K. Glover
 Hankel-norm approximations of linear multivariable systems and their L-infinity error bounds",
 Int. J. Control 39(6), 1984), which is why the energy measure below sums singular values rather
 than their squares.
+
+Equation numbers in the comments are cited from memory of the paper; check them against it
+before quoting them elsewhere.
 """
 
 from __future__ import annotations

@@ -16,6 +16,9 @@ Because ``A + G C`` can be made to decay (to zero after a few steps for a deadbe
 ``observer_markov`` fits ``D`` and ``Ybar_j`` by linear least squares; ``system_markov`` turns
 them into the system Markov parameters ``Y_k = C A^(k-1) B`` by the OKID recursion. The
 regression is exact on noise-free data once ``order * n_out`` is at least the system order.
+
+Equation numbers in the comments are cited from memory of the paper; check them against it
+before quoting them elsewhere.
 """
 
 from __future__ import annotations
