@@ -110,6 +110,7 @@ class _Feed:
         snapshot_timeout_s: float = 1.0,
         context: zmq.Context | None = None,
         rcvhwm: int = 1000,
+        curve: dict | None = None,
     ) -> None:
         if heartbeat_period_s <= 0:
             raise ValueError("heartbeat_period_s must be positive")
@@ -125,6 +126,9 @@ class _Feed:
         self.sub = self.ctx.socket(zmq.SUB)
         self.sub.setsockopt(zmq.LINGER, 0)
         self.sub.setsockopt(zmq.RCVHWM, int(rcvhwm))  # before connect: options bind at connect
+        self._curve = dict(curve or {})
+        for opt, value in self._curve.items():  # CurveZMQ client keys (daemon/security.py)
+            self.sub.setsockopt(opt, value)
         for t in (TOPICS["status"][0], *topics):
             self.sub.setsockopt(zmq.SUBSCRIBE, t)
         self.sub.connect(publish_endpoint)
@@ -152,6 +156,8 @@ class _Feed:
             self.req.close(linger=0)
         self.req = self.ctx.socket(zmq.REQ)
         self.req.setsockopt(zmq.LINGER, 0)
+        for opt, value in self._curve.items():
+            self.req.setsockopt(opt, value)
         self.req.connect(self.snapshot_endpoint)
         self.req.send(msgpack.packb({"v": 1, "want": "snapshot"}))
         self._req_sent = time.monotonic()

@@ -46,6 +46,9 @@ class FramePublisher:
     bind : bool
         Bind instead of connecting (when the daemon side connects).
     context : zmq.Context, optional
+    curve : dict, optional
+        CurveZMQ client options from
+        :func:`wingwatch.daemon.security.client_curve_options` (daemon with ``security.curve``).
     """
 
     def __init__(
@@ -62,6 +65,7 @@ class FramePublisher:
         bind: bool = False,
         context: zmq.Context | None = None,
         sndhwm: int = 100_000,
+        curve: dict | None = None,
     ) -> None:
         if rate_hz <= 0:
             raise ValueError("rate_hz must be positive")
@@ -82,6 +86,8 @@ class FramePublisher:
         self.sock.setsockopt(zmq.LINGER, 1000)
         self.sock.setsockopt(zmq.SNDHWM, sndhwm)
         self._subscribed = False
+        for opt, value in (curve or {}).items():  # CurveZMQ client keys (see daemon/security.py)
+            self.sock.setsockopt(opt, value)
         if bind:
             self.sock.bind(endpoint)
         else:

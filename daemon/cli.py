@@ -8,17 +8,23 @@ goes to stderr.
 
 from __future__ import annotations
 
-import argparse
-import json
-import logging
-import signal
-import sys
-from typing import Any, Callable
+import os
 
-from rich.console import Console
+# The daemon works on small matrices at a high rate: BLAS threads only add hand-off latency
+# (and stall on a busy 2-core machine). Set before numpy is first imported; the user may override.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
-from wingwatch.daemon.errors import WingwatchError
-from wingwatch.daemon.version import __version__
+import argparse  # noqa: E402
+import json  # noqa: E402
+import logging  # noqa: E402
+import signal  # noqa: E402
+import sys  # noqa: E402
+from typing import Any, Callable  # noqa: E402
+
+from rich.console import Console  # noqa: E402
+
+from wingwatch.daemon.errors import WingwatchError  # noqa: E402
+from wingwatch.daemon.version import __version__  # noqa: E402
 
 __all__ = ["main", "build_parser"]
 
@@ -245,6 +251,30 @@ def _cmd_replay(args: argparse.Namespace) -> int:
 
 
 # --------------------------------------------------------------------------------------------
+# keys
+
+
+def _cmd_keys(args: argparse.Namespace) -> int:
+    from wingwatch.daemon.security import make_keys
+
+    made = make_keys(args.dir, args.client or ["source", "controller", "monitor"], args.name)
+    if args.json:
+        _print_json(made)
+        return 0
+    err_console.print(f"made CurveZMQ key pairs in {made['directory']}:")
+    for name, k in made["keys"].items():
+        err_console.print(f"  {name}: public {k['public']}, secret {k['secret']}")
+    err_console.print(f"allowed clients (the daemon's allow-list): {made['allowed']}")
+    err_console.print("turn it on in the daemon's configuration:\n"
+                      f"  [security]\n  curve = true\n"
+                      f"  server_key = \"{made['keys'][args.name]['secret']}\"\n"
+                      f"  allowed_clients = \"{made['allowed']}\"")
+    err_console.print("Give each client its own .key_secret and the daemon's public .key; keep "
+                      "secret files private.")
+    return 0
+
+
+# --------------------------------------------------------------------------------------------
 
 
 def _not_yet(name: str, issue: str) -> Callable[[argparse.Namespace], int]:
@@ -320,12 +350,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=_cmd_replay)
 
+    p = sub.add_parser("keys", help="create CurveZMQ key pairs for the daemon and its clients",
+                       description="Create CurveZMQ key pairs: one for the daemon, one per client, "
+                                   "and the allow-list folder of client public keys.")
+    p.add_argument("--dir", default="keys", help="where to write them (default: keys)")
+    p.add_argument("--name", default="daemon", help="the daemon's key name (default: daemon)")
+    p.add_argument("--client", action="append", metavar="NAME",
+                   help="a client key to make (repeatable; default: source, controller, monitor)")
+    p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.set_defaults(func=_cmd_keys)
+
     _add_rig(sub)
     for name, text, issue in (
         ("monitor", "terminal monitor", "the publish and monitor issue"),
         ("calibrate", "identify the reference model from a pitch-up manoeuvre", "the calibration issue"),
         ("demo", "the whole system on the virtual rig", "the replay and demo issue"),
-        ("keys", "create CurveZMQ key pairs", "the hardening issue"),
     ):
         p = sub.add_parser(name, help=f"{text} (not yet available)")
         p.set_defaults(func=_not_yet(name, issue))

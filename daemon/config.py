@@ -42,6 +42,7 @@ __all__ = [
     "CurvatureSpec",
     "Outputs",
     "RecorderSpec",
+    "Security",
     "Limits",
     "load_config",
     "default_config_text",
@@ -126,6 +127,13 @@ class Limits:
 
 
 @dataclass(frozen=True)
+class Security:
+    curve: bool
+    server_key: str
+    allowed_clients: str
+
+
+@dataclass(frozen=True)
 class Config:
     """The resolved, validated configuration (immutable)."""
 
@@ -136,6 +144,7 @@ class Config:
     channels: dict[str, ChannelSpec]
     outputs: Outputs
     recorder: RecorderSpec
+    security: Security = Security(False, "keys/daemon.key_secret", "keys/allowed")
     identify: dict[str, Any] = field(default_factory=dict)
     watch: dict[str, Any] = field(default_factory=dict)
     publish: dict[str, Any] = field(default_factory=dict)
@@ -170,6 +179,7 @@ class Config:
                 "curvature": asdict(self.outputs.curvature),
             },
             "recorder": asdict(self.recorder),
+            "security": asdict(self.security),
             "identify": copy.deepcopy(self.identify),
             "watch": copy.deepcopy(self.watch),
             "publish": copy.deepcopy(self.publish),
@@ -342,6 +352,7 @@ _TOP_KEYS = {
     "channels",
     "outputs",
     "recorder",
+    "security",
     "identify",
     "watch",
     "publish",
@@ -468,6 +479,14 @@ def config_from_dict(raw: dict[str, Any], source: str = "<dict>") -> Config:
         fsync_interval_s=ck.number(r, "recorder.", "fsync_interval_s", nonneg=True),
     )
 
+    sec = ck.table(raw, "security")
+    ck.no_unknown(sec, "security.", {"curve", "server_key", "allowed_clients"})
+    security = Security(
+        curve=ck.boolean(sec, "security.", "curve"),
+        server_key=ck.string(sec, "security.", "server_key"),
+        allowed_clients=ck.string(sec, "security.", "allowed_clients"),
+    )
+
     pb = raw.get("publish", {})
     if not isinstance(pb, dict):
         raise ck.fail("publish", "must be a table")
@@ -489,6 +508,7 @@ def config_from_dict(raw: dict[str, Any], source: str = "<dict>") -> Config:
         channels=channels,
         outputs=Outputs(alpha=alpha, lift=lift, curvature=curvature),
         recorder=recorder,
+        security=security,
         identify=later["identify"],
         watch=later["watch"],
         publish=later["publish"],

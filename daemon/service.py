@@ -28,6 +28,7 @@ from wingwatch.daemon.config import Config, endpoint_is_loopback
 from wingwatch.daemon.errors import ConfigError, FrameRejected
 from wingwatch.daemon.pipeline import Pipeline, Session
 from wingwatch.daemon.recorder import LogWriter
+from wingwatch.daemon.security import SecuritySpec, ServerCurve
 
 __all__ = ["Daemon", "record_frames", "make_recorder", "check_binds"]
 
@@ -38,10 +39,10 @@ _DRAIN_MAX = 1000  # messages handled per poll wake-up before the loop looks at 
 
 
 def check_binds(config: Config, insecure: bool) -> None:
-    """Refuse non-loopback binds unless ``insecure`` (then log it loudly)."""
+    """Refuse non-loopback binds without CurveZMQ unless ``insecure`` (then log it loudly)."""
     for key in ("sensor", "publish", "snapshot"):
         ep = getattr(config.endpoints, key)
-        if not endpoint_is_loopback(ep):
+        if not endpoint_is_loopback(ep) and not config.security.curve:
             if not insecure:
                 raise ConfigError(
                     f"{config.source}: key 'endpoints.{key}' binds {ep}, which is not loopback; "
@@ -121,7 +122,14 @@ class Daemon:
         self.sub = self.ctx.socket(zmq.SUB)
         self.pub = self.ctx.socket(zmq.PUB)
         self.rep = self.ctx.socket(zmq.REP)
+        self.curve: ServerCurve | None = None
         try:
+            if config.security.curve:
+                sec = config.security
+                self.curve = ServerCurve(self.ctx, SecuritySpec(True, sec.server_key,
+                                                                sec.allowed_clients))
+                for s in (self.sub, self.pub, self.rep):
+                    self.curve.secure(s)
             self.rep.setsockopt(zmq.LINGER, 0)
             self.rep.setsockopt(zmq.MAXMSGSIZE, 65536)
             self.rep.bind(config.endpoints.snapshot)
@@ -133,8 +141,10 @@ class Daemon:
             self.pub.setsockopt(zmq.SNDHWM, int(config.publish.get("sndhwm", 1000)))
             self.sub.bind(config.endpoints.sensor)
             self.pub.bind(config.endpoints.publish)
-        except zmq.ZMQError as exc:
+        except (zmq.ZMQError, ConfigError) as exc:
             self.close()
+            if isinstance(exc, ConfigError):
+                raise
             raise ConfigError(
                 f"{config.source}: cannot bind the daemon's sockets ({exc}); is another daemon "
                 "running on these endpoints?"
@@ -173,8 +183,12 @@ class Daemon:
         self.rep.send(reply)
 
     def _extra_status(self) -> dict[str, Any]:
-        return {"publish_drops": self.publish_drops, "snapshot_requests": self.snapshot_requests,
-                "snapshot_rejected": self.snapshot_rejected}
+        out = {"publish_drops": self.publish_drops, "snapshot_requests": self.snapshot_requests,
+               "snapshot_rejected": self.snapshot_rejected}
+        if self.curve is not None:
+            self.curve.poll_refusals()
+            out["auth_refused"] = self.curve.refused
+        return out
 
     @property
     def log_path(self) -> Path | None:
@@ -229,6 +243,11 @@ class Daemon:
         return out
 
     def close(self) -> None:
+        socks = [s for s in (getattr(self, "sub", None), getattr(self, "pub", None),
+                             getattr(self, "rep", None)) if s is not None]
+        if getattr(self, "curve", None) is not None:
+            self.curve.close(socks)
+            self.curve = None
         for s in (getattr(self, "sub", None), getattr(self, "pub", None), getattr(self, "rep", None)):
             if s is not None:
                 s.close(linger=0)
