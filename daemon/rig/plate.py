@@ -110,9 +110,9 @@ class Numerics:
     shed_fraction: float = 0.25
     substeps: int = 1
     wake_raw: int = 160
-    wake_merge: int = 4
-    wake_level_capacity: int = 24
-    wake_levels: int = 6
+    wake_merge: int = 2
+    wake_level_capacity: int = 32
+    wake_levels: int = 12
 
 
 @dataclass(frozen=True)

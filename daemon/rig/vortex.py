@@ -128,8 +128,8 @@ class FlatWake:
         Groups merged at once (amalgamation runs every ``merge * batch`` steps).
     """
 
-    def __init__(self, x_colloc: np.ndarray, chord: float, raw_count: int = 160, merge: int = 4,
-                 level_capacity: int = 24, levels: int = 6, cheb_tol: float = 1e-7,
+    def __init__(self, x_colloc: np.ndarray, chord: float, raw_count: int = 160, merge: int = 2,
+                 level_capacity: int = 32, levels: int = 12, cheb_tol: float = 1e-7,
                  batch: int = 8) -> None:
         if raw_count < 1 or merge < 2 or level_capacity < 1 or levels < 0:
             raise ValueError("wake store sizes must be positive (merge at least 2)")
@@ -258,9 +258,15 @@ class FlatWake:
             gs = self.g[i0:i0 + k].reshape(B, m)
             w = np.abs(gs)
             wsum = w.sum(axis=1)
-            safe = np.where(wsum > 0.0, wsum, 1.0)
-            xm = np.where(wsum > 0.0, (xs * w).sum(axis=1) / safe, xs.mean(axis=1))
             gm = gs.sum(axis=1)
+            # centroid that keeps the group's first moment sum(g x) (so its far field is exact to
+            # dipole order) when it lies within the group; otherwise the |g|-weighted centroid
+            safe = np.where(wsum > 0.0, wsum, 1.0)
+            x_abs = np.where(wsum > 0.0, (xs * w).sum(axis=1) / safe, xs.mean(axis=1))
+            gsafe = np.where(gm != 0.0, gm, 1.0)
+            x_sig = (xs * gs).sum(axis=1) / gsafe
+            inside = (gm != 0.0) & (x_sig <= xs[:, 0]) & (x_sig >= xs[:, -1])
+            xm = np.where(inside, x_sig, x_abs)
             # bound on the change of upwash at any collocation point (docs/rig.md): a vortex moved
             # by at most the group's extent l changes the upwash at distance >= r by |g| l / (2 pi r^2)
             r = xs[:, -1] + self.D - x_te
