@@ -241,7 +241,8 @@ class PlateSimulator:
             sl = slice(p.start, p.start + p.beam.n_modes)
             sa = np.clip(p.direction * (g.panel_edges[:-1] - xp), 0.0, p.beam.length)
             sb = np.clip(p.direction * (g.panel_edges[1:] - xp), 0.0, p.beam.length)
-            self.panel_load[sl, :] = np.abs(p.beam.integral(sb) - p.beam.integral(sa))
+            lo, hi = np.minimum(sa, sb), np.maximum(sa, sb)  # the fore piece runs backwards in x
+            self.panel_load[sl, :] = p.beam.integral(hi) - p.beam.integral(lo)
         gauges = np.array([a.root_gauge, a.mid_gauge]) * c
         self.curv_gauges = self.mode_curvatures(gauges)  # (2, nm)
 
