@@ -35,7 +35,7 @@ Examples
 --------
 >>> sim = PlateSimulator(Article(n_modes=0), viscous=ViscousModel(low_re=False, stall=False),
 ...                      flow_speed=0.3, dt=1e-3)
->>> round(sim.steady_state(0.01)["C_L"] / 0.01, 4)     # thin-airfoil slope 2 pi
+>>> round(float(sim.steady_state(1e-4)["C_L"]) / 1e-4, 4)     # thin-airfoil slope 2 pi
 6.2832
 """
 
@@ -129,7 +129,7 @@ class ViscousModel:
 def low_re_factor(reynolds: float, coefficient: float = 12.0) -> float:
     """Lift-slope factor ``eta = 1 - coefficient / sqrt(Re)`` (our empirical law; see docs/rig.md).
 
-    >>> round(low_re_factor(3.0e4), 4)
+    >>> round(float(low_re_factor(3.0e4)), 4)
     0.9307
     """
     if reynolds <= 0.0:

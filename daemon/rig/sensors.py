@@ -32,8 +32,8 @@ _COL = {name: i for i, name in enumerate(CHANNELS)}
 def encoder_quantise(angle_deg, bits: int):
     """Round an angle to the encoder's least significant bit ``360 / 2**bits`` degrees.
 
-    >>> float(encoder_quantise(1.0, 14))
-    0.9997558...
+    >>> float(encoder_quantise(1.0, 14))   # 46 LSB of 360/16384 deg
+    1.0107421875
     """
     lsb = 360.0 / (1 << bits)
     return np.round(np.asarray(angle_deg) / lsb) * lsb

@@ -18,7 +18,7 @@ Used by the rig's checks, its documentation and the benchmark; nothing in the si
 Examples
 --------
 >>> c = theodorsen(0.5)
->>> round(c.real, 4), round(c.imag, 4)
+>>> round(float(c.real), 4), round(float(c.imag), 4)
 (0.5979, -0.1507)
 """
 
