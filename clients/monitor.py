@@ -35,8 +35,6 @@ from rich.rule import Rule
 from rich.table import Table
 from rich.text import Text
 
-from wingwatch.daemon.pipeline import ADVISORY
-
 __all__ = [
     "MonitorState",
     "render",
@@ -731,6 +729,8 @@ def _warning_lines(state: MonitorState, rows: int, width: int) -> list[Text]:
 
 
 def _caution() -> Text:
+    from wingwatch.daemon.pipeline import ADVISORY  # the daemon's own words (one source)
+
     t = Text(overflow="fold")
     t.append(ADVISORY, style=_S["caution_text"])
     return t

@@ -361,8 +361,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=_cmd_keys)
 
     _add_rig(sub)
+    from wingwatch.clients import monitor as monitor_cli  # the terminal monitor
+    p = sub.add_parser("monitor", help="terminal monitor: link, coefficients, modes, curvature "
+                       "margin and live warnings at a glance",
+                       description="Follow a running daemon (or a published replay) on one "
+                                   "terminal screen. " + ADVISORY_LINE)
+    monitor_cli.configure_parser(p)
+    p.set_defaults(func=monitor_cli.run)
     for name, text, issue in (
-        ("monitor", "terminal monitor", "the publish and monitor issue"),
         ("calibrate", "identify the reference model from a pitch-up manoeuvre", "the calibration issue"),
         ("demo", "the whole system on the virtual rig", "the replay and demo issue"),
     ):
