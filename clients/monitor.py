@@ -811,6 +811,7 @@ def _make_feed(state: MonitorState, publish: str, snapshot: str | None, *, conte
         def __init__(self) -> None:
             self.state = state
             self.snapshot_seen = False
+            self.live_heartbeats = 0
             super().__init__(publish, snapshot, topics=(b"ww.",), context=context, curve=curve)
 
         def _apply_snapshot(self, m: dict[str, Any]) -> None:
@@ -828,6 +829,8 @@ def _make_feed(state: MonitorState, publish: str, snapshot: str | None, *, conte
 
         def _on_message(self, kind: str, m: dict[str, Any], now: float) -> None:
             super()._on_message(kind, m, now)
+            if kind == "status":
+                self.live_heartbeats += 1
             self.state.apply(kind, m, received=time.time())
 
     return MonitorFeed()
@@ -836,15 +839,18 @@ def _make_feed(state: MonitorState, publish: str, snapshot: str | None, *, conte
 def listen(publish: str, snapshot: str | None = None, *, seconds: float = 2.0,
            state: MonitorState | None = None, context: Any = None, curve: dict | None = None
            ) -> MonitorState:
-    """Listen for up to ``seconds`` (less once a heartbeat and the snapshot are in) and return
-    the state: what ``wingwatch monitor --once`` renders."""
+    """Listen for up to ``seconds`` (less once a live heartbeat and the snapshot reply are in)
+    and return the state: what ``wingwatch monitor --once`` renders.
+
+    The live heartbeat, not the snapshot's copy of the last one, ends the wait: it was made
+    after the monitor joined, so its counters are current."""
     state = state or MonitorState(endpoint=publish)
     feed = _make_feed(state, publish, snapshot, context=context, curve=curve)
     try:
         deadline = time.monotonic() + seconds
         while time.monotonic() < deadline:
             feed.poll(min(0.05, max(0.0, deadline - time.monotonic())))
-            if state.status is not None and (snapshot is None or feed.snapshot_seen):
+            if feed.live_heartbeats and (snapshot is None or feed.snapshot_seen):
                 feed.poll(0.0)
                 break
     finally:
