@@ -65,7 +65,7 @@ def test_fir_markov_exact_on_noise_free_fir():
     u = rng.standard_normal(2000)
     h = np.array([0.0, 1.0, 0.5, -0.25, 0.125])
     r = np.convolve(u, h)[:2000]
-    mk = fir_markov(u, r, 6, ridge=0.0)
+    mk = fir_markov(u, r, 6)
     np.testing.assert_allclose(mk[:, 0, 0], np.r_[h, 0.0, 0.0], atol=1e-10)  # numpy convolve
 
 

@@ -37,7 +37,16 @@ import scipy.linalg
 from wingwatch.daemon.errors import IdentificationError
 from wingwatch.daemon.identify.era import Realisation, choose_rank, era
 
-__all__ = ["TransientFit", "decimate_mean", "resample_realisation", "fir_markov", "realise_transient"]
+__all__ = [
+    "TransientFit",
+    "MarkovEstimate",
+    "decimate_mean",
+    "resample_realisation",
+    "fir_markov",
+    "estimate_markov",
+    "realise",
+    "realise_transient",
+]
 
 
 @dataclass(frozen=True, eq=False)
@@ -97,13 +106,34 @@ def resample_realisation(A: np.ndarray, B: np.ndarray, dt_from: float, dt_to: fl
     return E[:n, :n], E[:n, n:]
 
 
-def fir_markov(u: np.ndarray, r: np.ndarray, n_lags: int, ridge: float = 1e-6) -> np.ndarray:
-    """Markov parameters ``h_0 .. h_L`` of ``r(k) = sum_j h_j u(k-j)`` by least squares.
+def _tc_kernel(n: int, lam: float) -> np.ndarray:
+    """Tuned-correlated kernel ``P_ij = lam^max(i, j)`` (Chen, Ohlsson and Ljung 2012)."""
+    idx = np.arange(n)
+    return lam ** np.maximum.outer(idx, idx)
 
-    This is the OKID regression (Juang et al. 1993, eq. 9) with no output terms: the observer
+
+def fir_markov(
+    u: np.ndarray,
+    r: np.ndarray,
+    n_lags: int,
+    *,
+    decays: tuple[float, ...] = (0.9, 0.95, 0.97, 0.98, 0.99, 0.995),
+    scales: tuple[float, ...] | None = None,
+) -> np.ndarray:
+    """Markov parameters ``h_0 .. h_L`` of ``r(k) = sum_j h_j u(k-j)``, kernel-regularised.
+
+    The regression is the OKID one (Juang et al. 1993, eq. 9) with no output terms: the observer
     gain is zero, so the fitted parameters are the system Markov parameters themselves and no
-    recursion is needed. ``ridge`` adds ``ridge * trace(V^T V) / L`` to the normal equations
-    (Tikhonov), which only matters when the input does not excite every lag.
+    recursion is needed. A long impulse response from a short record is ill-posed, so each
+    output's ``h`` gets the Gaussian prior of the tuned-correlated (TC) kernel,
+    ``h ~ N(0, c P)``, ``P_ij = lam^max(i,j)`` (smooth, exponentially decaying responses; T. Chen,
+    H. Ohlsson and L. Ljung, "On the estimation of transfer functions, regularizations and
+    Gaussian processes - Revisited", Automatica 48(8), 2012; G. Pillonetto and G. De Nicolao,
+    Automatica 46(1), 2010). The hyperparameters ``lam`` (from ``decays``) and ``c`` are chosen
+    per output by maximising the marginal likelihood over the grid, with the noise variance
+    taken from an unregularised fit. The estimate is the posterior mean::
+
+        h = c P V^T (c V P V^T + s2 I)^-1 r = L (s2 I + c L^T V^T V L)^-1 c L^T V^T r,  P = L L^T
 
     Shape diagram, one row per time k = L .. N-1::
 
@@ -116,17 +146,128 @@ def fir_markov(u: np.ndarray, r: np.ndarray, n_lags: int, ridge: float = 1e-6) -
     r = np.asarray(r, dtype=float)
     r = r[:, None] if r.ndim == 1 else r
     n = u.shape[0]
-    if n - n_lags < 2 * (n_lags + 1):
+    p = n_lags + 1
+    rows = n - n_lags
+    if rows < 2 * p:
         raise IdentificationError(
             f"the window has {n} samples, too few for {n_lags} Markov parameters "
-            f"(needs at least {3 * (n_lags + 1) + n_lags})"
+            f"(needs at least {2 * p + n_lags})"
         )
-    V = np.lib.stride_tricks.sliding_window_view(u, n_lags + 1)[:, ::-1]  # [u(k) .. u(k-L)]
+    V = np.lib.stride_tricks.sliding_window_view(u, p)[:, ::-1]  # [u(k) .. u(k-L)]
     R = r[n_lags:]
     G = V.T @ V
-    G[np.diag_indices_from(G)] += ridge * np.trace(G) / (n_lags + 1)
-    H = scipy.linalg.solve(G, V.T @ R, assume_a="pos")  # (V^T V + lam I) h = V^T r
-    return H[:, :, None]
+    VtR = V.T @ R
+    # Noise variance per output from the plain least-squares fit (minimum-norm if rank-poor).
+    h_ls, *_ = np.linalg.lstsq(V, R, rcond=1e-10)
+    dof = max(rows - p, 1)
+    s2 = np.maximum(np.sum((R - V @ h_ls) ** 2, axis=0) / dof, 1e-30)
+    base = np.trace(G) / p
+    if scales is None:
+        scales = tuple(10.0 ** np.arange(-8, 3))  # prior scale, times var(r) / mean power of u
+    out = np.zeros((p, R.shape[1]))
+    for j in range(R.shape[1]):
+        var_r = float(np.var(R[:, j])) or 1.0
+        best = (np.inf, None)
+        for lam in decays:
+            Lc = np.linalg.cholesky(_tc_kernel(p, lam) + 1e-12 * np.eye(p))
+            GL = Lc.T @ G @ Lc
+            b = Lc.T @ VtR[:, j]
+            for sc in scales:
+                c = sc * var_r / max(base, 1e-300)
+                M = s2[j] * np.eye(p) + c * GL  # s2 I + c L^T V^T V L
+                try:
+                    cf = scipy.linalg.cho_factor(M)
+                except np.linalg.LinAlgError:
+                    continue
+                quad = (R[:, j] @ R[:, j] - c * b @ scipy.linalg.cho_solve(cf, b)) / s2[j]
+                logdet = (rows - p) * np.log(s2[j]) + 2.0 * np.sum(np.log(np.diag(cf[0])))
+                nll = 0.5 * (quad + logdet)  # -log p(r | lam, c), up to a constant
+                if nll < best[0]:
+                    best = (nll, Lc @ (c * scipy.linalg.cho_solve(cf, b)))
+        if best[1] is None:  # pragma: no cover - the grid always holds a well-posed point
+            raise IdentificationError("no kernel hyperparameter gave a well-posed Markov estimate")
+        out[:, j] = best[1]
+    return out[:, :, None]
+
+
+@dataclass(frozen=True, eq=False)
+class MarkovEstimate:
+    """Markov parameters at the decimated rate, ready for ERA at any rank."""
+
+    markov: np.ndarray  # (L + 1, n_out, 1)
+    dt: float  # sample time of the original record
+    decimate: int
+    hankel_sv: np.ndarray
+
+    @property
+    def dt_decimated(self) -> float:
+        return self.dt * self.decimate
+
+    @property
+    def hankel_shape(self) -> tuple[int, int]:
+        n_lags = self.markov.shape[0] - 1
+        return n_lags // 2, n_lags - n_lags // 2
+
+    @property
+    def max_rank(self) -> int:
+        rows, cols = self.hankel_shape
+        return min(rows * self.markov.shape[1], cols)
+
+
+def estimate_markov(u: np.ndarray, r: np.ndarray, rate_hz: float, *, decimate: int = 20,
+                    markov_s: float = 5.0, min_lags: int = 34) -> MarkovEstimate:
+    """Decimate ``u`` (pitch rate) and ``r`` (outputs less the interpretable terms) and fit
+    ``markov_s`` seconds of Markov parameters (:func:`fir_markov`)."""
+    if decimate < 1:
+        raise ValueError("decimate must be at least 1")
+    u = np.asarray(u, dtype=float).reshape(-1)
+    r = np.asarray(r, dtype=float)
+    r = r[:, None] if r.ndim == 1 else r
+    if r.shape[0] != u.shape[0]:
+        raise ValueError("u and r must have the same number of samples")
+    if not (np.all(np.isfinite(u)) and np.all(np.isfinite(r))):
+        raise IdentificationError("the window holds non-finite samples")
+    dt = 1.0 / rate_hz
+    n_lags = max(int(round(markov_s / (dt * decimate))), min_lags)
+    mk = fir_markov(decimate_mean(u, decimate), decimate_mean(r, decimate), n_lags)
+    rows, cols = n_lags // 2, n_lags - n_lags // 2
+    sv = era(mk, 1, rows, cols).hankel_sv
+    return MarkovEstimate(markov=mk, dt=dt, decimate=decimate, hankel_sv=sv)
+
+
+def realise(est: MarkovEstimate, rank: int | None = None, *, max_rank: int = 16,
+            energy: float = 0.99, gap: float | None = 4.0, previous_rank: int | None = None
+            ) -> TransientFit:
+    """ERA of a :class:`MarkovEstimate` at ``rank`` (or a rank chosen from its Hankel singular
+    values), carried back to the sample rate.
+
+    A chosen (not fixed) rank whose realisation is unstable or has a pole on the negative real
+    axis (a noise state at the decimated Nyquist frequency) is lowered one at a time until it is
+    valid.
+    """
+    rows, cols = est.hankel_shape
+    cap = min(max_rank, est.max_rank)
+    fixed = rank is not None
+    if rank is None:
+        rank = choose_rank(est.hankel_sv, energy=energy, gap=gap, max_rank=cap,
+                           previous=previous_rank)
+    if not 1 <= rank <= est.max_rank:
+        raise IdentificationError(f"rank {rank} is outside 1..{est.max_rank} for this window")
+    why = ""
+    for r_try in range(rank, rank - 1 if fixed else 0, -1):
+        real = era(est.markov, r_try, rows, cols)
+        if np.max(np.abs(np.linalg.eigvals(real.A))) >= 1.0:
+            why = (f"the rank-{r_try} transient realisation is unstable; the window is too noisy "
+                   "or too poorly excited for that rank")
+            continue
+        try:
+            A, B = resample_realisation(real.A, real.B, est.dt_decimated, est.dt)
+        except IdentificationError as exc:
+            why = str(exc)
+            continue
+        return TransientFit(A=A, B=B, C=real.C.copy(), dt=est.dt, rank=r_try,
+                            hankel_sv=real.hankel_sv, decimate=est.decimate, realisation=real)
+    raise IdentificationError(why)
 
 
 def realise_transient(
@@ -140,69 +281,19 @@ def realise_transient(
     markov_s: float = 5.0,
     energy: float = 0.99,
     gap: float | None = 4.0,
-    ridge: float = 1e-6,
     previous_rank: int | None = None,
 ) -> TransientFit:
-    """Realise the transient from input ``u`` (pitch rate) to residual outputs ``r``.
-
-    Block-average by ``decimate``, fit ``markov_s`` seconds of Markov parameters by least
-    squares (:func:`fir_markov`), realise them by ERA, carry the result back to the sample
-    rate (:func:`resample_realisation`).
+    """Realise the transient from input ``u`` (pitch rate) to residual outputs ``r``:
+    :func:`estimate_markov` then :func:`realise`.
 
     Why not the observer terms of full OKID: on noisy data the fitted observer (ARX) part has
     spurious roots outside the unit circle as soon as the observer order exceeds the system's
     (measured here: |root| up to 1.6 at order 4-20 with 0.1 % output noise), so extending the
     Markov sequence by the OKID recursion diverges, and the observer realisation's recovery
-    ``A = Abar - G C`` amplifies the truncation error. Plain least-squares Markov parameters
-    over a window of several seconds at the decimated rate avoid both.
-
-    Parameters
-    ----------
-    rank : int, optional
-        Fixed rank; by default chosen from the Hankel singular values
-        (:func:`~wingwatch.daemon.identify.era.choose_rank` with ``energy``, ``gap``,
-        ``max_rank`` and hysteresis on ``previous_rank``). A chosen (not fixed) rank whose
-        realisation is unstable or has a pole on the negative real axis (a noise state at the
-        decimated Nyquist frequency) is lowered one at a time until it is valid.
+    ``A = Abar - G C`` amplifies the truncation error. Regularised least-squares Markov
+    parameters over a window of several seconds at the decimated rate avoid both.
     """
-    if decimate < 1:
-        raise ValueError("decimate must be at least 1")
-    u = np.asarray(u, dtype=float).reshape(-1)
-    r = np.asarray(r, dtype=float)
-    r = r[:, None] if r.ndim == 1 else r
-    if r.shape[0] != u.shape[0]:
-        raise ValueError("u and r must have the same number of samples")
-    dt = 1.0 / rate_hz
-    dt_d = dt * decimate
-    ud = decimate_mean(u, decimate)
-    rd = decimate_mean(r, decimate)
-    n_lags = max(int(round(markov_s / dt_d)), 2 * max_rank + 2)
-    mk = fir_markov(ud, rd, n_lags, ridge)
-    rows = n_lags // 2
-    cols = n_lags - rows
-    cap = min(max_rank, rows * mk.shape[1], cols)
-    first = era(mk, 1, rows, cols)  # for the singular values
-    fixed = rank is not None
-    if rank is None:
-        rank = choose_rank(first.hankel_sv, energy=energy, gap=gap, max_rank=cap,
-                           previous=previous_rank)
-    if not 1 <= rank <= cap:
-        raise IdentificationError(f"rank {rank} is outside 1..{cap} for this window")
-    why = ""
-    for r_try in range(rank, 0 if not fixed else rank - 1, -1):
-        real = era(mk, r_try, rows, cols)
-        if np.max(np.abs(np.linalg.eigvals(real.A))) >= 1.0:
-            why = (f"the rank-{r_try} transient realisation is unstable; the window is too noisy "
-                   "or too poorly excited for that rank")
-            continue
-        try:
-            A, B = resample_realisation(real.A, real.B, dt_d, dt)
-        except IdentificationError as exc:
-            why = str(exc)
-            continue
-        rank = r_try  # a rank whose extra state is a noise pole is lowered until it is valid
-        break
-    else:
-        raise IdentificationError(why)
-    return TransientFit(A=A, B=B, C=real.C.copy(), dt=dt, rank=rank, hankel_sv=real.hankel_sv,
-                        decimate=decimate, realisation=real)
+    est = estimate_markov(u, r, rate_hz, decimate=decimate, markov_s=markov_s,
+                          min_lags=2 * max_rank + 2)
+    return realise(est, rank, max_rank=max_rank, energy=energy, gap=gap,
+                   previous_rank=previous_rank)
