@@ -469,7 +469,9 @@ def _link_lines(state: MonitorState, now: float) -> list[Text]:
         second.append(f"{fmt_num(rates.get('samples_per_s'), 4)} samples/s  "
                       f"{fmt_num(rates.get('frames_per_s'), 3)} frames/s")
     lines.append(second)
-    c = st.get("counters") or {}
+    c = dict(st.get("counters") or {})
+    if state.status is None and state.event_counts:  # a replay: count the published events
+        c["gaps"] = state.event_counts.get("gap", 0) + state.event_counts.get("time_gap", 0)
     third = _line()
     for label, key in (("gaps", "gaps"), ("dup", "duplicates"), ("rejected", "rejected")):
         v = c.get(key)
@@ -728,6 +730,18 @@ def _warning_lines(state: MonitorState, rows: int, width: int) -> list[Text]:
     return lines
 
 
+def _event_line(e: dict[str, Any]) -> Text:
+    ev = str(e.get("event", "?"))
+    t = _line((f"{ev:<9}", _S["attn"] if ev == "restart" else _S["dim"]))
+    t.append(f"t {e['t']:.3f} s" if _finite(e.get("t")) else "t —")
+    t.append(f"  stream {e.get('stream', '?')}  seq {e.get('seq', '?')}", style=_S["dim"])
+    if ev == "gap" and e.get("missing_frames"):
+        t.append(f"  {e['missing_frames']} frame(s) missing")
+    elif ev == "time_gap" and _finite(e.get("missing_s")):
+        t.append(f"  {e['missing_s']:.3f} s missing")
+    return t
+
+
 def _caution() -> Text:
     from wingwatch.daemon.pipeline import ADVISORY  # the daemon's own words (one source)
 
@@ -764,6 +778,14 @@ def render(state: MonitorState, width: int | None = None, now: float | None = No
     for i in range(max(len(link), len(margin))):
         top.add_row(link[i] if i < len(link) else "", margin[i] if i < len(margin) else "")
 
+    events_block: list[RenderableType] = []
+    if spare >= 4 and state.events:
+        shown = list(state.events)[-min(3, spare - 2):]
+        events_block = [_rule(Text.assemble(("events", _S["title"]),
+                                            (f"  {sum(state.event_counts.values())} this session",
+                                             _S["dim"])))]
+        events_block += [_event_line(e) for e in reversed(shown)]
+        spare -= len(events_block)
     mode_rows = 3 + max(0, spare // 3)
     mid = Table.grid(padding=(0, 2), expand=False)
     mid.add_column(width=left_w, no_wrap=True)
@@ -786,6 +808,7 @@ def render(state: MonitorState, width: int | None = None, now: float | None = No
         mid,
         _rule(warn_title),
         *_warning_lines(state, warn_rows, width),
+        *events_block,
         _caution(),
     ]
     outer = Table.grid(expand=False)

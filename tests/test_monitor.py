@@ -350,3 +350,16 @@ def test_monitor_subcommand_is_wired():
 
     args = build_parser().parse_args(["monitor", "--once", "--refresh", "8"])
     assert args.func is run and args.once and args.refresh == 8.0
+
+
+def test_taller_screen_lists_recent_events_and_a_replay_counts_gaps_from_them():
+    s = MonitorState()
+    s.apply("event", wire("event", {"t": 1.5, "event": "gap", "stream": "rig", "seq": 150,
+                                    "missing_frames": 4, "missing_s": 0.0}, 0))
+    s.apply("event", wire("event", {"t": 2.5, "event": "restart", "stream": "rig", "seq": 0,
+                                    "missing_frames": 0, "missing_s": 0.0}, 1))
+    short, tall = text_of(s, 80), text_of(s, 80, height=32)
+    assert "gaps 1" in short  # no heartbeat (a replay): the gap events are counted instead
+    assert "4 frame(s) missing" not in short and "4 frame(s) missing" in tall
+    assert tall.index("restart") < tall.index("4 frame(s) missing")  # newest first
+    assert len(tall.splitlines()) <= 32
