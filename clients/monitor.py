@@ -63,6 +63,7 @@ _S = {
     "ok": "spring_green3",
     "attn": "orange1",
     "loud": "bold white on red3",
+    "alarm": "bold red3",
     "value": "bold",
     "advisory": "khaki1",
     "caution": "bold orange1",
@@ -516,7 +517,7 @@ def _margin_lines(state: MonitorState, width: int) -> list[Text]:
     if _finite(now) and now < 0.2:
         style = _S["limit"]
     bar_w = max(8, width - 13)
-    first = _line((gauge(now, bar_w), style.replace("on red3", "").strip() or style))
+    first = _line((gauge(now, bar_w), _S["alarm"] if style == _S["limit"] else style))
     first.append(f" {now * 100:5.1f} % left" if _finite(now) else "     ? % left", style=_S["value"])
     lines = [first]
     pm = mg.get("predicted_min")
@@ -560,7 +561,7 @@ def _drift_cell(drift: dict[str, Any] | None, warning: dict[str, Any] | None,
         t.append(f"z{z:+5.1f} " if _finite(z) else "z    — ", style=_S["dim"])
         if frac is not None:
             state_style = _S["ok"] if frac < 0.5 else (_S["attn"] if frac < 1 else _S["limit"])
-            t.append(gauge(frac, 5), style=state_style.replace(" on red3", ""))
+            t.append(gauge(frac, 5), style=_S["alarm"] if state_style == _S["limit"] else state_style)
             word = "steady" if frac < 0.5 else ("rising" if frac < 1 else "DRIFT")
             t.append(f" {word}", style=state_style)
     if warning:
@@ -668,7 +669,7 @@ def _mode_lines(state: MonitorState, rows: int) -> list[Text]:
         t.append(f"{z * 100:5.2f} % " if _finite(z) else "    — % ",
                  style=_S["attn"] if _finite(z) and z < 0.005 else "")
         # damping falling is the one that matters (toward instability)
-        t.append(za, style=_S["limit"].replace(" on red3", "") if za == "↓" else _S["dim"])
+        t.append(za, style=_S["alarm"] if za == "↓" else _S["dim"])
         d = drift.get(f"mode{mid}.freq_hz")
         w = _warning_for(state, f"mode{mid}.freq_hz") or _warning_for(state, f"mode{mid}.damping")
         if d or w:
