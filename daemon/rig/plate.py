@@ -41,7 +41,7 @@ Examples
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg
@@ -164,7 +164,6 @@ class _Params:
     stiffness_factor: float = 1.0
     added_mass: float = 0.0  # kg per metre of span
     added_mass_at: float = 1.0  # chord fraction
-    extra: dict = field(default_factory=dict)
 
 
 class PlateSimulator:

@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import math
 import tomllib
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, fields
 from pathlib import Path
 
 import numpy as np
@@ -159,7 +159,6 @@ class Scenario:
     events: tuple[Event, ...] = ()
     sensors: SensorSpec = SensorSpec()
     source: str = "<built-in>"
-    extra: dict = field(default_factory=dict, compare=False)
 
 
 # ===================================================================== motion
@@ -491,7 +490,9 @@ def validate_physics(sc: Scenario, rate_hz: float | None = None) -> None:
         from wingwatch.daemon.rig.beam import cantilever_eigenvalues
         from wingwatch.daemon.rig.theory import cantilever_frequency
         length = a.chord_m * max(a.pivot, 1.0 - a.pivot)
-        f1 = float(cantilever_frequency(cantilever_eigenvalues(1), length, a.rigidity, a.areal_mass)[0])
+        stiffest = max([1.0] + [e.get("factor") for e in sc.events if e.kind == "stiffness"])
+        f1 = float(cantilever_frequency(cantilever_eigenvalues(1), length, a.rigidity * stiffest,
+                                        a.areal_mass)[0])
         if f1 * dt > 0.1:
             raise ConfigError(
                 f"{src}: 'scenario.rate_hz' = {rate:g} gives a time step too large to resolve the "

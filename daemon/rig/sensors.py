@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from wingwatch.daemon.rig.scenario import CHANNELS, Event, SensorSpec
+from wingwatch.daemon.rig.scenario import CHANNELS, SensorSpec
 
 __all__ = ["SensorModel", "encoder_quantise"]
 
