@@ -65,6 +65,7 @@ TOPICS = {
     "model": (b"ww.model", OUT_SCHEMA),
     "warning": (b"ww.warning", OUT_SCHEMA),
     "event": (b"ww.event", OUT_SCHEMA),
+    "watch": (b"ww.watch", OUT_SCHEMA),
 }
 
 #: Reason codes a frame can be refused with (codec and ingest together), with their wire number

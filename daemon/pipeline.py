@@ -46,6 +46,7 @@ OUTPUT_LOG_KIND = {
     "warning": rl.KIND_WARNING,
     "event": rl.KIND_EVENT,
     "status": rl.KIND_STATUS,
+    "watch": rl.KIND_WATCH,
 }
 
 

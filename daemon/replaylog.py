@@ -54,6 +54,7 @@ __all__ = [
     "KIND_WARNING",
     "KIND_EVENT",
     "KIND_PLAN",
+    "KIND_WATCH",
     "OUTPUT_KINDS",
     "MAX_RECORD_BODY",
     "Record",
@@ -75,6 +76,7 @@ KIND_MODEL = 4  # a model update as published
 KIND_WARNING = 5  # a warning event as published
 KIND_EVENT = 6  # a daemon event: discontinuity, source restart, recorder notice
 KIND_PLAN = 7  # an inbound controller plan (alpha trajectory)
+KIND_WATCH = 8  # the watchers' periodic state as published
 KINDS = {
     KIND_INBOUND: "inbound",
     KIND_REJECTED: "rejected",
@@ -83,9 +85,10 @@ KINDS = {
     KIND_WARNING: "warning",
     KIND_EVENT: "event",
     KIND_PLAN: "plan",
+    KIND_WATCH: "watch",
 }
-#: Record kinds that are the daemon's decisions (compared by replay).
-OUTPUT_KINDS = (KIND_MODEL, KIND_WARNING, KIND_EVENT)
+#: Record kinds that are the daemon's decisions and sample-time outputs (compared by replay).
+OUTPUT_KINDS = (KIND_MODEL, KIND_WARNING, KIND_EVENT, KIND_WATCH)
 
 _FILE_HEAD = struct.Struct("<8sHHI")
 _REC_HEAD = struct.Struct("<4sBBHIdI")  # sync, kind, flags, aux, length, t_recv, crc
