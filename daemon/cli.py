@@ -251,6 +251,111 @@ def _cmd_replay(args: argparse.Namespace) -> int:
 
 
 # --------------------------------------------------------------------------------------------
+# calibrate
+
+
+def _cmd_calibrate(args: argparse.Namespace) -> int:
+    from wingwatch.daemon.calibrate import calibrate, load_record
+    from wingwatch.daemon.config import load_config
+    from wingwatch.daemon.modelfile import save_model
+
+    cfg = load_config(args.config) if args.config else None
+    cal = load_record(args.log, config=cfg)
+    test = load_record(args.test, config=cfg) if args.test else None
+    result = calibrate(cal, test, rank=args.rank, max_rank=args.max_rank)
+    out = save_model(result.model, args.out)
+    s = result.summary()
+    s["model_file"] = str(out)
+    if args.plot:
+        s["plot"] = _calibration_plot(result, test or cal, args.plot)
+    if args.json:
+        _print_json(s)
+        return 0
+    from rich.table import Table
+
+    con = Console(highlight=False)
+    t = Table(title=f"reference model from {args.log}", show_lines=False)
+    t.add_column("coefficient")
+    t.add_column("output")
+    t.add_column("least squares", justify="right")
+    t.add_column("± 1 sd", justify="right")
+    t.add_column("point read", justify="right")
+    names = {"quasi_steady": "quasi-steady /rad", "rate": "pitch rate /(rad/s)",
+             "added_mass": "added mass /(rad/s^2)"}
+    for key, label in names.items():
+        for out_name in ("lift", "curvature"):
+            t.add_row(label, "C_L" if out_name == "lift" else "kappa",
+                      f"{s[key][out_name]:.5g}", f"{s['uncertainty'][key][out_name]:.2g}",
+                      f"{s['point_read'][key][out_name]:.5g}")
+    con.print(t)
+    e = Table(title=f"normalised RMS error on the {s['errors_evaluated_on']}")
+    e.add_column("rank", justify="right")
+    e.add_column("C_L", justify="right")
+    e.add_column("kappa", justify="right")
+    e.add_column("Hankel sv", justify="right")
+    for r, err in s["errors_by_rank"].items():
+        hsv = s["hankel_sv"][int(r) - 1] if int(r) - 1 < len(s["hankel_sv"]) else float("nan")
+        mark = "  <" if int(r) == s["rank"] else ""
+        e.add_row(f"{r}{mark}", f"{100 * err['lift']:.2f} %", f"{100 * err['curvature']:.2f} %",
+                  f"{hsv:.3g}")
+    con.print(e)
+    con.print(f"rank {s['rank']}: {s['rank_reason']}")
+    c = Table(title="contributions (share of signal energy)")
+    c.add_column("term")
+    c.add_column("C_L", justify="right")
+    c.add_column("kappa", justify="right")
+    for k, v in s["contributions"].items():
+        c.add_row(k.replace("_", "-"), f"{100 * v['lift']:.1f} %", f"{100 * v['curvature']:.1f} %")
+    con.print(c)
+    for w in s["spread_warnings"]:
+        err_console.print(f"warning: {w}")
+    for n in s["notes"]:
+        err_console.print(f"note: {n}")
+    if s.get("plot"):
+        err_console.print(f"plot: {s['plot']}")
+    err_console.print(f"model file: {out}")
+    return 0
+
+
+def _calibration_plot(result: Any, rec: Any, path: str) -> str | None:
+    """Contribution plot (PNG) when the plotting extra is installed; None otherwise."""
+    try:
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+    except ImportError:
+        err_console.print("note: no plot: install the plotting extra (pip install 'wingwatch[plot]')")
+        return None
+    import numpy as np
+
+    from wingwatch.daemon.calibrate import contributions, find_lead_in
+    from wingwatch.daemon.identify.interpretable import simulate_states
+
+    seg = find_lead_in(rec)
+    m = result.model
+    X, _ = simulate_states(m.A, m.B[:, 0], rec.alpha_dot)
+    parts = contributions(m, rec.alpha - seg.alpha0, rec.alpha_dot, rec.alpha_ddot, X)
+    fig, axes = plt.subplots(2, 1, figsize=(9, 6), sharex=True)
+    for j, (ax, name) in enumerate(zip(axes, ("C_L", "curvature (1/m)"))):
+        ax.plot(rec.t, rec.y[:, j] - seg.bias[j], "k", lw=1.2, label="measured")
+        ax.plot(rec.t, sum(p[:, j] for p in parts.values()), "--", color="tab:red", lw=1.0,
+                label="model")
+        for k, p in parts.items():
+            if k != "bias":
+                ax.plot(rec.t, p[:, j], lw=0.8, label=k.replace("_", "-"))
+        ax.set_ylabel(name)
+        ax.grid(alpha=0.3)
+    axes[0].legend(ncol=3, fontsize=8)
+    axes[-1].set_xlabel("t (s)")
+    fig.suptitle(f"rank {m.rank} reference model: contributions")
+    fig.tight_layout()
+    fig.savefig(path, dpi=100)
+    plt.close(fig)
+    return str(path)
+
+
+# --------------------------------------------------------------------------------------------
 # keys
 
 
@@ -350,6 +455,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=_cmd_replay)
 
+    p = sub.add_parser("calibrate", help="identify the reference model from a pitch-up manoeuvre",
+                       description="Identify the interpretable reference model (quasi-steady, "
+                                   "pitch-rate and added-mass columns plus an ERA transient) from a "
+                                   "replay log of a pitch-up manoeuvre.")
+    p.add_argument("log", metavar="LOG", help="log of the pitch-up manoeuvre (quiet, ramp, hold)")
+    p.add_argument("--test", metavar="LOG", help="a separate test manoeuvre to score ranks on")
+    p.add_argument("--out", metavar="MODEL", default="reference.wwmodel.json",
+                   help="model file to write (default: reference.wwmodel.json)")
+    p.add_argument("--rank", type=int, help="use this rank instead of choosing one")
+    p.add_argument("--max-rank", type=int, default=12, help="largest rank tried (default 12)")
+    p.add_argument("--config", metavar="FILE", help="channel map to use instead of the log's")
+    p.add_argument("--plot", metavar="PNG", help="also write a contribution plot (plotting extra)")
+    p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.set_defaults(func=_cmd_calibrate)
+
     p = sub.add_parser("keys", help="create CurveZMQ key pairs for the daemon and its clients",
                        description="Create CurveZMQ key pairs: one for the daemon, one per client, "
                                    "and the allow-list folder of client public keys.")
@@ -369,7 +489,6 @@ def build_parser() -> argparse.ArgumentParser:
     monitor_cli.configure_parser(p)
     p.set_defaults(func=monitor_cli.run)
     for name, text, issue in (
-        ("calibrate", "identify the reference model from a pitch-up manoeuvre", "the calibration issue"),
         ("demo", "the whole system on the virtual rig", "the replay and demo issue"),
     ):
         p = sub.add_parser(name, help=f"{text} (not yet available)")
