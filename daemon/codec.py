@@ -95,8 +95,9 @@ FLAG_BITS = {
 }
 _FLAG_MASK = (1 << 32) - 1
 
-_STREAM_RE = re.compile(r"^[A-Za-z0-9_.-]{1,64}$")
-_CHANNEL_RE = re.compile(r"^[A-Za-z0-9_.:-]{1,64}$")
+# \A ... \Z, not ^ ... $: "$" also matches before a trailing newline, which let "rig\n" through.
+_STREAM_RE = re.compile(r"\A[A-Za-z0-9_.-]{1,64}\Z")
+_CHANNEL_RE = re.compile(r"\A[A-Za-z0-9_.:-]{1,64}\Z")
 _DTYPES = {"<f4": np.dtype("<f4"), "<f8": np.dtype("<f8")}
 _REQUIRED = ("v", "stream", "seq", "t0", "rate", "channels", "dtype", "n", "data")
 _OPTIONAL = ("flags",)
@@ -228,7 +229,8 @@ def decode_sensor_frame(
     if not isinstance(stream, str) or not _STREAM_RE.match(stream):
         raise FrameRejected("bad_field", "field 'stream' must be 1-64 characters of A-Z a-z 0-9 _ . -")
     if topic != SENSOR_TOPIC_PREFIX + stream.encode("ascii"):
-        shown = topic[:80].decode("ascii", "replace")
+        # escaped: received bytes never reach a log line raw (a newline could forge a line)
+        shown = repr(topic[:80])[2:-1]
         raise FrameRejected("bad_topic", f"topic '{shown}' does not match stream '{stream}'")
 
     seq = msg["seq"]
@@ -383,8 +385,10 @@ def decode_snapshot_request(payload: bytes) -> str:
     msg = _unpack(payload, SNAPSHOT_REQUEST_LIMIT)
     if not isinstance(msg, dict):
         raise FrameRejected("malformed", "a snapshot request must be a msgpack map")
-    if msg.get("v") != OUT_SCHEMA:
-        raise FrameRejected("schema_version", f"snapshot request version must be {OUT_SCHEMA}")
+    v = msg.get("v")
+    # an integer, as for sensor frames: True == 1 and 1.0 == 1 in Python, but neither is version 1
+    if isinstance(v, bool) or not isinstance(v, int) or v != OUT_SCHEMA:
+        raise FrameRejected("schema_version", f"snapshot request version must be the integer {OUT_SCHEMA}")
     want = msg.get("want")
     if want not in ("snapshot",):
         raise FrameRejected("bad_field", "field 'want' must be 'snapshot'")

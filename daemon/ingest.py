@@ -13,7 +13,9 @@ Sequence rules, per stream (documented in ``docs/protocol.md``):
 - ``seq`` more than one above: a *gap* of ``seq - last - 1`` frames (accepted, counted).
 - ``seq`` equal to a recently accepted one: *duplicate* (rejected).
 - ``seq`` below the last accepted and not recent: *out of order*, arrived late (rejected).
-- ``seq == 0`` after a later frame: the source *restarted* (accepted as a discontinuity).
+- ``seq == 0`` after a later frame, or a frame 0 whose bytes differ from the frame 0 already
+  accepted (a source that restarted with its clock reset to the same ``t0``): the source
+  *restarted* (accepted as a discontinuity). Only a byte-identical copy of frame 0 is a duplicate.
 - a newer ``seq`` whose ``t0`` lies before the end of the previous frame: *clock backwards*
   (rejected).
 
@@ -39,6 +41,7 @@ from __future__ import annotations
 import collections
 import copy
 import logging
+import zlib
 from dataclasses import dataclass
 from typing import Any
 
@@ -51,6 +54,10 @@ __all__ = ["IngestVerdict", "Ingest", "BurstLog"]
 log = logging.getLogger("wingwatch.ingest")
 
 _RECENT = 256  # how many accepted (seq, t0) per stream are remembered to spot duplicates
+#: Longest topic the ingest stage reads (a sensor topic is at most 7 + 64 bytes). Longer ones
+#: are refused as ``bad_topic`` before decoding, so a replay of a log whose recorder had to cut
+#: an absurd topic (the log format holds 65535 topic bytes) reaches the same verdict.
+MAX_TOPIC_BYTES = 1024
 
 
 @dataclass(frozen=True)
@@ -149,6 +156,9 @@ class Ingest:
         self.counters["frames"] += 1
         if not parts_ok:
             return self._reject("malformed", "a sensor message must have exactly two parts, topic and payload")
+        if len(topic) > MAX_TOPIC_BYTES:
+            return self._reject("bad_topic", f"topic is {len(topic)} bytes, longer than any sensor "
+                                             f"topic (limit {MAX_TOPIC_BYTES})")
         try:
             frame = decode_sensor_frame(
                 topic,
@@ -184,7 +194,11 @@ class Ingest:
             half = 0.5 / spec.rate_hz
             last = st["last"]
             seen_t0 = st["recent"].get(frame.seq)
-            if frame.seq == 0 and last > 0 and (seen_t0 is None or abs(frame.t0 - seen_t0) > half):
+            if frame.seq == 0 and (last > 0 or seen_t0 is not None) and (
+                    seen_t0 is None or abs(frame.t0 - seen_t0) > half
+                    or st.get("first_crc") != zlib.crc32(payload)):
+                # A frame 0 that is not a byte-identical copy of the accepted frame 0: the
+                # source restarted (possibly with its clock reset to the same t0).
                 restart = True
             elif seen_t0 is not None:
                 return self._reject("duplicate", "sequence number already received", where)
@@ -202,10 +216,13 @@ class Ingest:
                 if frame.t0 > st["t_end"] + half:
                     time_gap = frame.t0 - st["t_end"]
         if st is None or restart:
-            st = {"last": -1, "t_end": frame.t0, "recent": collections.OrderedDict()}
+            st = {"last": -1, "t_end": frame.t0, "recent": collections.OrderedDict(),
+                  "first_crc": None}
             self._seq[frame.stream] = st
             if restart:
                 self.counters["restarts"] += 1
+        if frame.seq == 0:
+            st["first_crc"] = zlib.crc32(payload)  # tells a re-sent frame 0 from a restart
         st["last"] = frame.seq
         st["t_end"] = frame.t_end
         recent = st["recent"]
@@ -233,7 +250,8 @@ class Ingest:
         return {
             "seq": {
                 s: {"last": v["last"], "t_end": v["t_end"],
-                    "recent": [[k, t] for k, t in v["recent"].items()]}
+                    "recent": [[k, t] for k, t in v["recent"].items()],
+                    "first_crc": v.get("first_crc")}
                 for s, v in self._seq.items()
             },
             "counters": dict(self.counters),
@@ -244,7 +262,8 @@ class Ingest:
         self.reset()
         self._seq = {
             s: {"last": int(v["last"]), "t_end": float(v["t_end"]),
-                "recent": collections.OrderedDict((int(k), float(t)) for k, t in v["recent"])}
+                "recent": collections.OrderedDict((int(k), float(t)) for k, t in v["recent"]),
+                "first_crc": None if v.get("first_crc") is None else int(v["first_crc"])}
             for s, v in state["seq"].items()
         }
         self.counters.update({k: int(v) for k, v in state["counters"].items()})

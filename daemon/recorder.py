@@ -17,13 +17,23 @@ Write failures (disk full, unwritable) follow one documented policy: the recorde
 records it could not write in a bounded memory queue (``backlog_bytes``), retries on every
 later append, raises :attr:`LogWriter.failing` so the status heartbeat and a warning say so,
 and counts every record it had to drop once the queue is full (oldest first are kept: the
-queue refuses new ones). It never raises into the daemon loop.
+queue refuses new ones). It never raises into the daemon loop. The first failure and the
+recovery are logged as warnings (logger ``wingwatch.recorder``). A segment whose header could
+not be written is removed again, so a run directory never holds an empty or headless segment
+that would make the whole run unreadable.
+
+Two inputs the log format cannot hold are handled without raising: a topic longer than 65535
+bytes is cut to 65535 bytes and the record gets flags bit 1 (``FLAG_TOPIC_CUT``; the ingest stage
+refuses any topic that long as ``bad_topic``, so a replay reaches the same verdict), and a
+record above the format's body limit is counted in ``dropped_records`` with ``last_error`` saying
+why.
 """
 
 from __future__ import annotations
 
 import collections
 import datetime as _dt
+import logging
 import os
 import platform
 import time
@@ -31,10 +41,17 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from wingwatch.daemon.replaylog import FORMAT_VERSION, pack_file_header, pack_record
+from wingwatch.daemon.replaylog import FORMAT_VERSION, MAX_RECORD_BODY, pack_file_header, pack_record
 from wingwatch.daemon.version import __version__
 
-__all__ = ["LogWriter", "RecorderStats", "make_run_id"]
+__all__ = ["LogWriter", "RecorderStats", "make_run_id", "FLAG_TOPIC_CUT", "MAX_TOPIC"]
+
+log = logging.getLogger("wingwatch.recorder")
+
+#: Record flags bit set when the topic had to be cut to :data:`MAX_TOPIC` bytes.
+FLAG_TOPIC_CUT = 1 << 1
+#: The most topic bytes a record holds (the topic length is a u16 in the format).
+MAX_TOPIC = 0xFFFF
 
 
 def make_run_id(unix_time: float) -> str:
@@ -168,14 +185,25 @@ class LogWriter:
             flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL
         try:
             self.fd = os.open(p, flags | getattr(os, "O_BINARY", 0), 0o644)
-            self.paths.append(p)
-            self.segment = index
-            head = pack_file_header(self.header_for(index))
-            self._write_all(head)
-            self.seg_bytes = len(head)
-            self.bytes += len(head)
         except OSError as exc:
-            self._fail(exc)
+            self._fail(exc, p)
+            return
+        head = pack_file_header(self.header_for(index))
+        try:
+            self._write_all(head)
+        except OSError as exc:
+            # A segment without a whole header would make every reader refuse the run: remove
+            # it, and use the same segment number on the next attempt.
+            self._fail(exc, p)
+            try:
+                os.unlink(p)
+            except OSError:
+                pass
+            return
+        self.paths.append(p)
+        self.segment = index
+        self.seg_bytes = len(head)
+        self.bytes += len(head)
 
     def _write_all(self, data: bytes) -> None:
         view = memoryview(data)
@@ -183,8 +211,14 @@ class LogWriter:
             n = os.write(self.fd, view)
             view = view[n:]
 
-    def _fail(self, exc: OSError) -> None:
-        self.last_error = f"{exc.strerror or exc} ({getattr(exc, 'filename', '') or self.paths[-1:]})"
+    def _fail(self, exc: OSError, where: Path | None = None) -> None:
+        if where is None:
+            where = getattr(exc, "filename", None) or (self.paths[-1] if self.paths else "")
+        first = not self.last_error
+        self.last_error = f"{exc.strerror or exc} ({where})"
+        if first:
+            log.warning("recorder: cannot write the replay log: %s; holding records in memory "
+                        "(up to %d bytes) and retrying", self.last_error, self.backlog_bytes)
         if self.fd is not None:
             try:
                 os.close(self.fd)
@@ -196,6 +230,14 @@ class LogWriter:
     def append(self, kind: int, topic: bytes, payload: bytes, t_recv: float, *, flags: int = 0,
                aux: int = 0) -> bool:
         """Append one record; True if it reached the file now, False if queued or dropped."""
+        if len(topic) > MAX_TOPIC:
+            topic, flags = topic[:MAX_TOPIC], flags | FLAG_TOPIC_CUT
+        if 2 + len(topic) + len(payload) > MAX_RECORD_BODY:
+            self.dropped += 1
+            self.last_error = (f"a record of {len(payload)} bytes is above the log format's limit "
+                               f"of {MAX_RECORD_BODY} bytes; dropped")
+            log.warning("recorder: %s", self.last_error)
+            return False
         rec = pack_record(kind, topic, payload, t_recv, flags=flags, aux=aux)
         if self._backlog or self.fd is None:
             self._retry()
@@ -258,6 +300,9 @@ class LogWriter:
             self.seg_bytes += len(rec)
             self.bytes += len(rec)
             self.records += 1
+        if self.last_error:
+            log.warning("recorder: writing the replay log again (%s); %d record(s) were dropped "
+                        "in all while it failed", self.paths[-1] if self.paths else "", self.dropped)
         self.last_error = ""
 
     def _sync(self, now: float) -> None:
