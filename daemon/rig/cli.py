@@ -11,6 +11,12 @@ Modes (one run, one pass over the frames):
   the run's events and settings as ``OUT.events.json`` (format in docs/rig.md); with ``--out`` or
   ``--live`` alongside that mode, alone it runs the rig with neither sockets nor log.
 
+Closed loop (live mode only): ``--command-endpoint EP`` binds a SUB socket on EP (loopback only)
+for ``cmd.alpha`` pitch commands (schema in docs/rig.md, decoded by
+:func:`wingwatch.daemon.plan.decode_command`); the pitch axis then follows the newest command
+through the rig's servo (:class:`wingwatch.daemon.rig.source.PitchServo`), holding the last one,
+and follows the scenario until the first arrives. Refused command messages are counted.
+
 The simulator is the one of :mod:`wingwatch.daemon.rig.plate` (Katz & Plotkin, "Low-Speed
 Aerodynamics", 2001, lumped-vortex method, strongly coupled to Euler-Bernoulli modes).
 """
@@ -29,9 +35,9 @@ import numpy as np
 
 from wingwatch.daemon.errors import ConfigError
 from wingwatch.daemon.rig.scenario import list_scenarios
-from wingwatch.daemon.rig.source import TRUTH_KEYS, RigFrame, VirtualRig
+from wingwatch.daemon.rig.source import TRUTH_KEYS, CommandSchedule, RigFrame, VirtualRig
 
-__all__ = ["configure_parser", "run", "truth_paths", "TruthWriter"]
+__all__ = ["configure_parser", "run", "truth_paths", "TruthWriter", "CommandListener"]
 
 
 def configure_parser(parser: argparse.ArgumentParser) -> None:
@@ -59,6 +65,9 @@ def configure_parser(parser: argparse.ArgumentParser) -> None:
                         help="CurveZMQ client secret key file (daemon with security.curve)")
     parser.add_argument("--server-key", default=None, metavar="FILE",
                         help="the daemon's CurveZMQ public key file")
+    parser.add_argument("--command-endpoint", default=None, metavar="EP",
+                        help="live mode: bind EP (loopback) for cmd.alpha pitch commands and follow "
+                             "them through the pitch servo (default: off, the scenario's motion)")
     parser.add_argument("--json", action="store_true", help="print one JSON summary on stdout")
 
 
@@ -116,6 +125,80 @@ class TruthWriter:
         return npz, js
 
 
+class CommandListener:
+    """A pitch command source for :class:`VirtualRig` fed by ``cmd.alpha`` messages.
+
+    Binds a SUB socket on ``endpoint`` (loopback addresses only) and, every time the rig asks
+    :meth:`alpha_at`, takes in what has arrived (without blocking). Commands are kept on the
+    source clock (:class:`CommandSchedule`): the one in force is the newest whose time has come,
+    held until a newer one; before the first the rig follows its scenario. Refused messages are
+    counted by reason (``rejected``), never raised.
+    """
+
+    def __init__(self, endpoint: str, *, context=None, max_pending: int = 10_000) -> None:
+        import zmq
+
+        from wingwatch.daemon.config import endpoint_is_loopback
+
+        if not endpoint_is_loopback(endpoint):
+            raise ConfigError(f"--command-endpoint {endpoint!r} is not a loopback address; the rig "
+                              "takes commands on loopback only")
+        self.endpoint = endpoint
+        self.schedule = CommandSchedule()
+        self.max_pending = int(max_pending)
+        self.received = 0
+        self.rejected: dict[str, int] = {}
+        self._own_ctx = context is None
+        self.ctx = context or zmq.Context()
+        self.sock = self.ctx.socket(zmq.SUB)
+        self.sock.setsockopt(zmq.LINGER, 0)
+        self.sock.setsockopt(zmq.RCVHWM, 10_000)
+        self.sock.setsockopt(zmq.MAXMSGSIZE, 4096)
+        self.sock.setsockopt(zmq.SUBSCRIBE, b"")  # see wrong topics too, and count them
+        try:
+            self.sock.bind(endpoint)
+        except zmq.ZMQError as exc:
+            self.sock.close(linger=0)
+            raise ConfigError(f"--command-endpoint {endpoint!r}: cannot bind ({exc})") from None
+
+    def drain(self) -> int:
+        """Take in every message that has arrived; returns how many commands were accepted."""
+        import zmq
+
+        from wingwatch.daemon.errors import FrameRejected
+        from wingwatch.daemon.plan import decode_command
+
+        n = 0
+        while True:
+            try:
+                parts = self.sock.recv_multipart(zmq.NOBLOCK)
+            except zmq.Again:
+                return n
+            try:
+                if len(parts) != 2:
+                    raise FrameRejected("malformed", "a command is exactly two message frames")
+                cmd = decode_command(parts[0], parts[1])
+            except FrameRejected as exc:
+                self.rejected[exc.reason] = self.rejected.get(exc.reason, 0) + 1
+                continue
+            if len(self.schedule) >= self.max_pending:
+                self.rejected["too_many_pending"] = self.rejected.get("too_many_pending", 0) + 1
+                continue
+            self.schedule.push(cmd.t, cmd.alpha)
+            self.received += 1
+            n += 1
+
+    def alpha_at(self, t: float) -> float | None:
+        self.drain()
+        self.schedule.forget_before(t)  # the rig asks in time order: older ones are spent
+        return self.schedule.alpha_at(t)
+
+    def close(self) -> None:
+        self.sock.close(linger=0)
+        if self._own_ctx:
+            self.ctx.term()
+
+
 def _load_config(path: str | None, rate_hz: float):
     from wingwatch.daemon.config import load_config
 
@@ -157,6 +240,9 @@ def run(args: argparse.Namespace) -> int:
             for name, desc in rows:
                 sys.stdout.write(f"{name:<{width}}  {desc}\n")
         return 0
+    if getattr(args, "command_endpoint", None) and (args.out or (args.truth and not args.live)):
+        raise ConfigError("--command-endpoint needs live mode (it cannot go with --out, or with "
+                          "--truth without --live)")
     rig = VirtualRig(args.scenario, seed=args.seed, rate_hz=args.rate, duration_s=args.duration)
     truth = TruthWriter(rig) if args.truth else None
     summary: dict[str, Any] = {"scenario": rig.scenario.name, "seed": rig.seed,
@@ -212,6 +298,10 @@ def _live(args: argparse.Namespace, rig: VirtualRig, truth: TruthWriter | None) 
         from wingwatch.daemon.security import client_curve_options
 
         curve = client_curve_options(args.client_key, args.server_key)
+    listener = None
+    if getattr(args, "command_endpoint", None):
+        listener = CommandListener(args.command_endpoint)
+        rig.command = listener  # read when frames() starts
     pub = FramePublisher(endpoint, stream="rig", channels=rig.channels, rate_hz=rig.rate_hz, curve=curve)
     sent = 0
     interrupted = False
@@ -235,4 +325,10 @@ def _live(args: argparse.Namespace, rig: VirtualRig, truth: TruthWriter | None) 
         interrupted = True
     finally:
         pub.close()
-    return {"endpoint": endpoint, "sent": sent, "interrupted": interrupted}
+        if listener is not None:
+            listener.close()
+    out: dict[str, Any] = {"endpoint": endpoint, "sent": sent, "interrupted": interrupted}
+    if listener is not None:
+        out["commands"] = {"endpoint": listener.endpoint, "received": listener.received,
+                           "rejected": dict(listener.rejected)}
+    return out
