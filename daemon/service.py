@@ -30,12 +30,28 @@ from wingwatch.daemon.pipeline import Pipeline, Session
 from wingwatch.daemon.recorder import LogWriter
 from wingwatch.daemon.security import SecuritySpec, ServerCurve
 
-__all__ = ["Daemon", "record_frames", "make_recorder", "check_binds"]
+__all__ = ["Daemon", "record_frames", "make_recorder", "make_pipeline", "check_binds"]
 
 log = logging.getLogger("wingwatch.daemon")
 
 _POLL_MS = 50
 _DRAIN_MAX = 1000  # messages handled per poll wake-up before the loop looks at its clock
+
+
+def make_pipeline(config: Config, reference: Any = None, *, identify: bool = True) -> Pipeline:
+    """The daemon's pipeline: ingest and channel map, then identification (and the watchers).
+
+    ``reference`` is a ReferenceModel or a path to a model file; None uses
+    ``identify.reference_model`` from the configuration (empty: run cold).
+    """
+    p = Pipeline(config)
+    if identify:
+        from wingwatch.daemon.identifier import OnlineIdentifier
+        from wingwatch.daemon.modelfile import load_model
+
+        ref = load_model(reference) if isinstance(reference, (str, Path)) else reference
+        p.stages.append(OnlineIdentifier(config, ref))
+    return p
 
 
 def check_binds(config: Config, insecure: bool) -> None:
@@ -110,7 +126,8 @@ class Daemon:
     """
 
     def __init__(self, config: Config, *, record: bool = True, record_dir: str | Path | None = None,
-                 context: zmq.Context | None = None, insecure: bool = False) -> None:
+                 context: zmq.Context | None = None, insecure: bool = False,
+                 reference: Any = None, identify: bool = True) -> None:
         check_binds(config, insecure)
         self.config = config
         self._own_ctx = context is None
@@ -149,7 +166,8 @@ class Daemon:
                 f"{config.source}: cannot bind the daemon's sockets ({exc}); is another daemon "
                 "running on these endpoints?"
             ) from None
-        self.session = Session(Pipeline(config), recorder=self.recorder, sink=self._send)
+        self.session = Session(make_pipeline(config, reference, identify=identify),
+                               recorder=self.recorder, sink=self._send)
         self.publish_drops = 0
         self.messages = 0
         self.snapshot_requests = 0

@@ -128,14 +128,17 @@ def initial_state(window: int, x0: float) -> np.ndarray:
 
 
 def _fir(b: np.ndarray, x: np.ndarray, zi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """``y[k] = sum_j b[:, j] x[k - j]`` for several kernels, tap by tap (frame-split exact)."""
+    """``y[k] = sum_j b[:, j] x[k - j]`` for several kernels (frame-split exact).
+
+    Each output is one dot product over the window, summed by numpy's own einsum loop
+    (``optimize=False``: no BLAS), whose order depends only on the window, never on how many
+    samples the frame holds; so frame by frame equals all at once, bit for bit.
+    """
     w = b.shape[1]
     n = x.size
     ext = np.concatenate([zi, x])  # x[k - w + 1 .. k] for every k of the frame
-    out = np.zeros((n, b.shape[0]))
-    for j in range(w):  # fixed summation order: the same for every sample and every framing
-        start = w - 1 - j
-        out += ext[start : start + n, None] * b[None, :, j]  # + b_j x[k - j]
+    windows = np.lib.stride_tricks.sliding_window_view(ext, w)  # row k: x[k-w+1 .. k]
+    out = np.einsum("ni,di->nd", windows, b[:, ::-1], optimize=False)  # sum_j b_j x[k - j]
     return out, ext[n:].copy()
 
 

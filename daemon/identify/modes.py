@@ -20,7 +20,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.optimize import linear_sum_assignment
 
 __all__ = ["Modes", "modal_parameters", "mac", "mac_matrix", "ModeTracker"]
 
@@ -287,6 +286,8 @@ class ModeTracker:
         shapes : array_like, optional
             Mode shapes as columns, shape ``(n, k)``; enables the MAC test.
         """
+        from scipy.optimize import linear_sum_assignment  # here: scipy.optimize loads slowly
+
         f = np.asarray(frequency_hz, dtype=float).ravel()
         zeta = np.asarray(damping, dtype=float).ravel()
         k = f.size

@@ -50,7 +50,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.linalg import blas, lapack
-from scipy.stats import t as student_t
 
 from wingwatch.daemon.errors import IdentificationError
 
@@ -453,6 +452,8 @@ class RecursiveLeastSquares:
         if not 0.0 < level < 1.0:
             raise ValueError(f"level must be in (0, 1), got {level}")
         dof = self.effective_window - self.n_regressors
+        from scipy.stats import t as student_t  # imported here: scipy.stats is slow to load
+
         half = self.stderr * (student_t.ppf(0.5 + level / 2.0, dof) if dof > 0 else np.nan)
         return self._theta - half, self._theta + half
 
@@ -465,6 +466,24 @@ class RecursiveLeastSquares:
         ``excitation_half_life``.
         """
         Q = self._Q
+        d = np.sqrt(np.diag(Q))
+        if np.any(d <= 0):
+            return 0.0
+        corr = Q / d[:, None] / d[None, :]
+        return float(max(np.linalg.eigvalsh(0.5 * (corr + corr.T))[0], 0.0))
+
+    def excitation_of(self, columns) -> float:
+        """:attr:`excitation` restricted to some regressor columns (e.g. the input terms).
+
+        >>> est = RecursiveLeastSquares(3, 1, half_life=100.0)
+        >>> rng = np.random.default_rng(1)
+        >>> u = rng.standard_normal(400)
+        >>> _ = est.update(np.column_stack([u, u, rng.standard_normal(400)]), u)
+        >>> est.excitation_of([0, 2]) > 0.5, est.excitation_of([0, 1]) < 1e-9
+        (True, True)
+        """
+        idx = np.asarray(columns, dtype=int)
+        Q = self._Q[np.ix_(idx, idx)]
         d = np.sqrt(np.diag(Q))
         if np.any(d <= 0):
             return 0.0

@@ -29,6 +29,7 @@ True
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -112,13 +113,25 @@ def _tc_kernel(n: int, lam: float) -> np.ndarray:
     return lam ** np.maximum.outer(idx, idx)
 
 
+@functools.lru_cache(maxsize=32)
+def _tc_factor(n: int, lam: float) -> np.ndarray:
+    """Cholesky factor of the TC kernel (cached: the online window keeps its size)."""
+    L = np.linalg.cholesky(_tc_kernel(n, lam) + 1e-12 * np.eye(n))
+    L.flags.writeable = False
+    return L
+
+
+DECAYS = (0.9, 0.95, 0.97, 0.98, 0.99, 0.995)
+SCALES = tuple(10.0 ** np.arange(-8, 3))
+
+
 def fir_markov(
     u: np.ndarray,
     r: np.ndarray,
     n_lags: int,
     *,
-    decays: tuple[float, ...] = (0.9, 0.95, 0.97, 0.98, 0.99, 0.995),
-    scales: tuple[float, ...] | None = None,
+    hyper: list | None = None,
+    chosen: list | None = None,
 ) -> np.ndarray:
     """Markov parameters ``h_0 .. h_L`` of ``r(k) = sum_j h_j u(k-j)``, kernel-regularised.
 
@@ -140,6 +153,10 @@ def fir_markov(
         r(k)^T     =  [ u(k)  u(k-1)  ...  u(k-L) ]  @  [ h_0^T ; h_1^T ; ... ; h_L^T ]
       (rows x n_out)          (rows x (L+1))               ((L+1) x n_out)
 
+    ``hyper`` (one ``(decay index, scale index)`` pair per output, from an earlier call) makes
+    the search local: only the grid neighbours of the previous choice are tried (a warm start
+    for the online slow layer). The pairs chosen are appended to ``chosen`` when it is given.
+
     Returns an array of shape ``(L + 1, n_out, 1)`` (``markov[0]`` is the direct term).
     """
     u = np.asarray(u, dtype=float).reshape(-1)
@@ -157,23 +174,31 @@ def fir_markov(
     R = r[n_lags:]
     G = V.T @ V
     VtR = V.T @ R
-    # Noise variance per output from the plain least-squares fit (minimum-norm if rank-poor).
-    h_ls, *_ = np.linalg.lstsq(V, R, rcond=1e-10)
+    # Noise variance per output from the (barely) unregularised least-squares fit.
+    G_ls = G + (1e-10 * np.trace(G) / p + 1e-300) * np.eye(p)
+    h_ls = scipy.linalg.cho_solve(scipy.linalg.cho_factor(G_ls), VtR)
     dof = max(rows - p, 1)
     s2 = np.maximum(np.sum((R - V @ h_ls) ** 2, axis=0) / dof, 1e-30)
-    base = np.trace(G) / p
-    if scales is None:
-        scales = tuple(10.0 ** np.arange(-8, 3))  # prior scale, times var(r) / mean power of u
+    base = np.trace(G) / p  # prior scale grid SCALES is in units of var(r) / mean power of u
     out = np.zeros((p, R.shape[1]))
+    chol: dict[int, tuple[np.ndarray, np.ndarray]] = {}
     for j in range(R.shape[1]):
         var_r = float(np.var(R[:, j])) or 1.0
-        best = (np.inf, None)
-        for lam in decays:
-            Lc = np.linalg.cholesky(_tc_kernel(p, lam) + 1e-12 * np.eye(p))
-            GL = Lc.T @ G @ Lc
+        best = (np.inf, None, None)
+        if hyper is not None and j < len(hyper):
+            di, si = hyper[j]
+            d_range = range(max(di - 1, 0), min(di + 2, len(DECAYS)))
+            s_range = range(max(si - 1, 0), min(si + 2, len(SCALES)))
+        else:
+            d_range, s_range = range(len(DECAYS)), range(len(SCALES))
+        for di in d_range:
+            if di not in chol:
+                Lc = _tc_factor(p, DECAYS[di])
+                chol[di] = (Lc, Lc.T @ G @ Lc)
+            Lc, GL = chol[di]
             b = Lc.T @ VtR[:, j]
-            for sc in scales:
-                c = sc * var_r / max(base, 1e-300)
+            for si in s_range:
+                c = SCALES[si] * var_r / max(base, 1e-300)
                 M = s2[j] * np.eye(p) + c * GL  # s2 I + c L^T V^T V L
                 try:
                     cf = scipy.linalg.cho_factor(M)
@@ -183,10 +208,12 @@ def fir_markov(
                 logdet = (rows - p) * np.log(s2[j]) + 2.0 * np.sum(np.log(np.diag(cf[0])))
                 nll = 0.5 * (quad + logdet)  # -log p(r | lam, c), up to a constant
                 if nll < best[0]:
-                    best = (nll, Lc @ (c * scipy.linalg.cho_solve(cf, b)))
+                    best = (nll, Lc @ (c * scipy.linalg.cho_solve(cf, b)), (di, si))
         if best[1] is None:  # pragma: no cover - the grid always holds a well-posed point
             raise IdentificationError("no kernel hyperparameter gave a well-posed Markov estimate")
         out[:, j] = best[1]
+        if chosen is not None:
+            chosen.append(best[2])
     return out[:, :, None]
 
 
@@ -198,6 +225,7 @@ class MarkovEstimate:
     dt: float  # sample time of the original record
     decimate: int
     hankel_sv: np.ndarray
+    hyper: list | None = None  # kernel hyperparameters chosen, for a warm start next time
 
     @property
     def dt_decimated(self) -> float:
@@ -215,7 +243,8 @@ class MarkovEstimate:
 
 
 def estimate_markov(u: np.ndarray, r: np.ndarray, rate_hz: float, *, decimate: int = 20,
-                    markov_s: float = 5.0, min_lags: int = 34) -> MarkovEstimate:
+                    markov_s: float = 5.0, min_lags: int = 34, hyper: list | None = None
+                    ) -> MarkovEstimate:
     """Decimate ``u`` (pitch rate) and ``r`` (outputs less the interpretable terms) and fit
     ``markov_s`` seconds of Markov parameters (:func:`fir_markov`)."""
     if decimate < 1:
@@ -229,10 +258,13 @@ def estimate_markov(u: np.ndarray, r: np.ndarray, rate_hz: float, *, decimate: i
         raise IdentificationError("the window holds non-finite samples")
     dt = 1.0 / rate_hz
     n_lags = max(int(round(markov_s / (dt * decimate))), min_lags)
-    mk = fir_markov(decimate_mean(u, decimate), decimate_mean(r, decimate), n_lags)
+    chosen: list = []
+    mk = fir_markov(decimate_mean(u, decimate), decimate_mean(r, decimate), n_lags, hyper=hyper,
+                    chosen=chosen)
     rows, cols = n_lags // 2, n_lags - n_lags // 2
     sv = era(mk, 1, rows, cols).hankel_sv
-    return MarkovEstimate(markov=mk, dt=dt, decimate=decimate, hankel_sv=sv)
+    return MarkovEstimate(markov=mk, dt=dt, decimate=decimate, hankel_sv=sv,
+                          hyper=[list(c) for c in chosen])
 
 
 def realise(est: MarkovEstimate, rank: int | None = None, *, max_rank: int = 16,

@@ -1,0 +1,656 @@
+"""Online identification stage: keeps the interpretable lift-and-curvature model current.
+
+The model is the calibration's (``daemon/calibrate.py``)::
+
+    y - y0 = K_qs (alpha - alpha0) + K_rate alpha_dot + K_am alpha_ddot + C x + bias,
+    x[k+1] = A x[k] + B alpha_dot[k]
+
+- **Conditioning**: a causal Savitzky-Golay differentiator (Savitzky and Golay 1964) gives
+  alpha, alpha_dot and alpha_ddot with a fixed lag; the outputs pass through the same value
+  kernel, so every signal carries the same delay (and the same bandwidth as in calibration).
+- **Fast layer** (every block): recursive least squares (Ljung and Soderstrom, "Theory and
+  Practice of Recursive Identification", 1983) on the regressor
+  ``[alpha, alpha_dot, alpha_ddot, x, 1]`` for both outputs, with exponential forgetting set
+  by a half-life and gated directional forgetting against windup (Kulhavy 1987), in the
+  square-root information form of :mod:`wingwatch.daemon.identify.rls`. The transient states
+  ``x`` come from running the current (A, B) on alpha_dot.
+- **Slow layer** (every ``slow_period_s`` of sample time): on the last ``slow_window_s``, the
+  residual after the interpretable terms is realised anew (regularised least-squares Markov
+  parameters and ERA, Juang and Pappa 1985; :mod:`wingwatch.daemon.identify.transient`), rank
+  chosen from the Hankel singular values with hysteresis. The fast layer moves to the new basis:
+  with the same rank by the state transformation that maps the old states onto the new ones over
+  the window (least squares) and :meth:`RecursiveLeastSquares.transform`, so nothing learned is
+  lost; with a new rank, by refitting the estimator over the window.
+- **Validity gate**: a candidate is published to the controller only when it is finite, stable
+  with margin, predicts the recent window (a-priori, one-step errors of the fast layer) within
+  ``max_nrmse``, has coefficients within physical bounds and has seen enough excitation. A
+  rejected candidate keeps the previous model in service and is published with its reason.
+- **Modes**: continuous-time frequency and damping from the eigenvalues of A, tracked across
+  updates by frequency proximity and MAC (Allemang and Brown 1982) with
+  ``scipy.optimize.linear_sum_assignment`` (:class:`~wingwatch.daemon.identify.modes.ModeTracker`).
+
+Samples are gathered into blocks of ``block_s`` of sample time before they are processed (the
+decision rhythm depends only on sample counts, so live and replay agree exactly).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from wingwatch.daemon.condition import ConditionedBlock
+from wingwatch.daemon.config import Config
+from wingwatch.daemon.errors import ConfigError, IdentificationError
+from wingwatch.daemon.identify.differentiate import DelayLine, SavgolDifferentiator
+from wingwatch.daemon.identify.interpretable import simulate_states
+from wingwatch.daemon.identify.modes import ModeTracker, modal_parameters
+from wingwatch.daemon.identify.rls import RecursiveLeastSquares
+from wingwatch.daemon.identify.transient import estimate_markov, realise
+from wingwatch.daemon.modelfile import COEFFICIENT_KEYS, OUTPUT_KEYS, ReferenceModel, load_model
+from wingwatch.daemon.pipeline import Output
+
+__all__ = ["IdentifySettings", "OnlineIdentifier", "ModelState", "IDENTIFY_DEFAULTS"]
+
+#: Defaults of the [identify] table (documented in configs/wingwatch.toml).
+IDENTIFY_DEFAULTS: dict[str, Any] = {
+    "reference_model": "",
+    "diff_window": 41,
+    "diff_order": 3,
+    "block_s": 0.1,
+    "half_life_s": 30.0,
+    "gate": 0.1,
+    "slow_period_s": 2.0,
+    "slow_window_s": 10.0,
+    "decimate": 20,
+    "markov_s": 2.5,
+    "max_rank": 10,
+    "rank_energy": 0.95,
+    "fit_half_life_s": 5.0,
+    "max_nrmse": 0.25,
+    "min_rate_rms_deg_s": 0.3,
+    "max_spectral_radius": 0.99999,
+    "qs_lift_bounds": [0.0, 12.6],
+}
+
+
+@dataclass(frozen=True)
+class IdentifySettings:
+    reference_model: str
+    diff_window: int
+    diff_order: int
+    block_s: float
+    half_life_s: float
+    gate: float
+    slow_period_s: float
+    slow_window_s: float
+    decimate: int
+    markov_s: float
+    max_rank: int
+    rank_energy: float
+    fit_half_life_s: float
+    max_nrmse: float
+    min_rate_rms_deg_s: float
+    max_spectral_radius: float
+    qs_lift_bounds: tuple[float, float]
+
+    @classmethod
+    def from_config(cls, config: Config) -> "IdentifySettings":
+        raw = dict(IDENTIFY_DEFAULTS)
+        where = config.source
+        for k, v in config.identify.items():
+            if k not in IDENTIFY_DEFAULTS:
+                raise ConfigError(f"{where}: key 'identify.{k}' is not a known key (allowed here: "
+                                  f"{', '.join(sorted(IDENTIFY_DEFAULTS))}).")
+            raw[k] = v
+        out: dict[str, Any] = {}
+        for k, default in IDENTIFY_DEFAULTS.items():
+            v = raw[k]
+            key = f"'identify.{k}'"
+            if isinstance(default, str):
+                if not isinstance(v, str):
+                    raise ConfigError(f"{where}: key {key} must be a string (a path, or empty).")
+            elif isinstance(default, list):
+                if (not isinstance(v, list) or len(v) != 2
+                        or not all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in v)
+                        or not v[0] < v[1]):
+                    raise ConfigError(f"{where}: key {key} must be [low, high] with low < high.")
+                v = (float(v[0]), float(v[1]))
+            elif isinstance(default, int) and not isinstance(default, bool):
+                if isinstance(v, bool) or not isinstance(v, int) or v < 1:
+                    raise ConfigError(f"{where}: key {key} must be a whole number of at least 1.")
+            else:
+                finite_ok = math.isfinite(v) if isinstance(v, (int, float)) else False
+                if k == "half_life_s" and isinstance(v, float) and v == math.inf:
+                    finite_ok = True  # inf: no forgetting (batch least squares, for checks)
+                zero_ok = k == "gate"  # 0 turns the windup gate off
+                if (isinstance(v, bool) or not isinstance(v, (int, float)) or not finite_ok
+                        or v < 0 or (v == 0 and not zero_ok)):
+                    raise ConfigError(f"{where}: key {key} must be a positive number.")
+                v = float(v)
+            out[k] = v
+        if out["diff_window"] % 2 == 0 or out["diff_window"] <= out["diff_order"] + 1:
+            raise ConfigError(f"{where}: key 'identify.diff_window' must be odd and larger than "
+                              "diff_order + 1.")
+        if not 2 <= out["diff_order"] <= 6:
+            raise ConfigError(f"{where}: key 'identify.diff_order' must be 2 to 6.")
+        if out["slow_window_s"] < 3.2 * out["markov_s"]:
+            raise ConfigError(f"{where}: key 'identify.slow_window_s' must be at least 3.2 x "
+                              "markov_s (the Markov fit needs that many samples).")
+        if not 0 <= out["gate"] < 1:
+            raise ConfigError(f"{where}: key 'identify.gate' must be in [0, 1).")
+        if out["max_spectral_radius"] >= 1:
+            raise ConfigError(f"{where}: key 'identify.max_spectral_radius' must be below 1.")
+        return cls(**out)
+
+
+@dataclass(frozen=True, eq=False)
+class ModelState:
+    """A model as published: transient (A, B, C) and the coefficient columns."""
+
+    model_id: str
+    seq: int
+    status: str
+    t: float
+    A: np.ndarray
+    B: np.ndarray
+    theta: np.ndarray  # (4 + r, 2)
+    lower: np.ndarray
+    upper: np.ndarray
+
+
+class _Ring:
+    """Fixed-capacity ring of rows (oldest overwritten), for the slow layer's window."""
+
+    def __init__(self, capacity: int, width: int) -> None:
+        self.buf = np.zeros((capacity, width))
+        self.cap = capacity
+        self.n = 0  # rows written in all
+        self.head = 0
+
+    def extend(self, rows: np.ndarray) -> None:
+        k = rows.shape[0]
+        if k >= self.cap:
+            self.buf[:] = rows[-self.cap:]
+            self.head = 0
+        else:
+            end = self.head + k
+            if end <= self.cap:
+                self.buf[self.head:end] = rows
+            else:
+                first = self.cap - self.head
+                self.buf[self.head:] = rows[:first]
+                self.buf[:k - first] = rows[first:]
+            self.head = end % self.cap
+        self.n += k
+
+    def clear(self) -> None:
+        self.n = 0
+        self.head = 0
+
+    @property
+    def size(self) -> int:
+        return min(self.n, self.cap)
+
+    def view(self) -> np.ndarray:
+        if self.n < self.cap:
+            return self.buf[:self.n].copy()
+        return np.concatenate([self.buf[self.head:], self.buf[:self.head]])
+
+
+class _BlockSim:
+    """Transient states over blocks of a fixed length, with (A, B) folded into two matrices.
+
+    ``X[k] = A^k x0 + sum_{j<k} A^(k-1-j) B u[j]`` becomes ``X = P x0 + T u`` and the state after
+    the block ``A^n x0 + H u``: two matrix-vector products per block instead of a loop over
+    samples. Rebuilt when (A, B) or the block length change.
+    """
+
+    def __init__(self) -> None:
+        self.key: tuple[int, int, int] | None = None
+
+    def run(self, A: np.ndarray, B: np.ndarray, u: np.ndarray, x0: np.ndarray
+            ) -> tuple[np.ndarray, np.ndarray]:
+        r, n = A.shape[0], u.size
+        if r == 0:
+            return np.zeros((n, 0)), x0
+        key = (id(A), id(B), n)
+        if key != self.key:
+            powers = np.empty((n + 1, r, r))
+            powers[0] = np.eye(r)
+            for k in range(1, n + 1):
+                powers[k] = A @ powers[k - 1]
+            h = powers[:n] @ B.reshape(r)  # h[m] = A^m B
+            lag = np.arange(n)[:, None] - np.arange(n)[None, :] - 1  # k - 1 - j
+            T = np.where((lag >= 0)[:, :, None], h[np.clip(lag, 0, None)], 0.0)  # (n, n, r)
+            self.P = powers[:n]  # (n, r, r)
+            self.T = T.transpose(0, 2, 1).reshape(n * r, n)
+            self.An = powers[n]
+            self.H = h[::-1].T.copy()  # (r, n): A^(n-1-j) B
+            self.key = key
+            self._hold = (A, B)  # keep the arrays alive so their ids stay theirs
+        X = (self.P @ x0) + (self.T @ u).reshape(n, r)
+        return X, self.An @ x0 + self.H @ u
+
+
+def _pair(v: np.ndarray) -> dict[str, float]:
+    return {k: float(x) for k, x in zip(OUTPUT_KEYS, v)}
+
+
+class OnlineIdentifier:
+    """The identification stage of the pipeline (see the module docstring).
+
+    Parameters
+    ----------
+    config : Config
+        Sample rate and the [identify] table.
+    reference : ReferenceModel, optional
+        Start from it (normal); defaults to ``identify.reference_model`` when that names a file.
+        Without one the stage runs cold, clearly flagged as having no reference.
+    """
+
+    def __init__(self, config: Config, reference: ReferenceModel | None = None) -> None:
+        self.config = config
+        self.settings = s = IdentifySettings.from_config(config)
+        self.rate = config.conditioning_stream.rate_hz
+        self.dt = 1.0 / self.rate
+        if reference is None and s.reference_model:
+            reference = load_model(s.reference_model)
+        if reference is not None and abs(reference.dt - self.dt) > 1e-9 * self.dt:
+            raise ConfigError(f"the reference model's sample time {reference.dt} s does not match "
+                              f"the stream's rate {self.rate} Hz; calibrate at the stream's rate.")
+        self.reference = reference
+        self.block_n = max(1, int(round(s.block_s * self.rate)))
+        self.slow_n = max(1, int(round(s.slow_period_s * self.rate)))
+        self.window_n = int(round(s.slow_window_s * self.rate))
+        self.fit_lam = 2.0 ** (-1.0 / (s.fit_half_life_s * self.rate))
+        self.reset()
+
+    # ----------------------------------------------------------------------------------------
+    def reset(self) -> None:
+        s = self.settings
+        self.sg_alpha = SavgolDifferentiator(s.diff_window, s.diff_order, self.rate)
+        self.sg_y = [SavgolDifferentiator(s.diff_window, s.diff_order, self.rate) for _ in range(2)]
+        self.lag = self.sg_alpha.lag
+        self.flow_delay = DelayLine(self.lag)
+        ref = self.reference
+        if ref is not None:
+            self.alpha0 = float(ref.operating_point["alpha_rad"])
+            self.y0 = np.array([ref.operating_point["lift"], ref.operating_point["curvature"]])
+            A, B = ref.A.copy(), ref.B.reshape(-1, 1).copy()
+            theta0 = np.vstack([ref.k_qs, ref.k_rate, ref.k_am, ref.C.T, ref.bias])
+        else:
+            self.alpha0 = None
+            self.y0 = None
+            A, B = np.zeros((0, 0)), np.zeros((0, 1))
+            theta0 = np.zeros((4, 2))
+        self.A, self.B = A, B
+        self.x = np.zeros(A.shape[0])
+        self.sim = _BlockSim()
+        self.markov_hyper: list | None = None  # kernel hyperparameters, warm start
+        self.rls = self._new_rls(theta0)
+        self.pending: list[ConditionedBlock] = []
+        self.pending_n = 0
+        self.samples = 0
+        self.since_slow = 0
+        self.settle_left = s.diff_window  # samples to skip while the filters fill
+        self.ring = _Ring(self.window_n, 5)  # alpha, alpha_dot, alpha_ddot, y1, y2 (deviations)
+        self.fit_e2 = np.zeros(2)
+        self.fit_y2 = np.zeros(2)
+        self.candidate_seq = 0
+        self.in_service: dict[str, Any] | None = None
+        self.last_t = 0.0
+        self.tracker = ModeTracker()
+        self.rank_proposal = self.A.shape[0]
+        self.announced = False
+        self.rejections = 0
+        self.accepted = 0
+        self.rate_sq = 0.0  # pitch-rate energy since the last slow update (excitation gate)
+        self.rate_n = 0
+
+    def _new_rls(self, theta0: np.ndarray) -> RecursiveLeastSquares:
+        s = self.settings
+        p = theta0.shape[0]
+        # The reference is the starting estimate, not data: it carries no precision (the
+        # transient-state columns are small numbers, so even 1e-3 would bias C measurably), and
+        # models are published only after the slow layer has a full window of data.
+        return RecursiveLeastSquares(p, 2, half_life=s.half_life_s, rate=self.rate, gate=s.gate,
+                                     prior_precision=0.0, theta0=theta0)
+
+    @property
+    def rank(self) -> int:
+        return int(self.A.shape[0])
+
+    # ----------------------------------------------------------------------------------------
+    def update(self, block: ConditionedBlock) -> list[Output]:
+        out: list[Output] = []
+        if not self.announced:
+            self.announced = True
+            out.append(self._announce(float(block.t[0])))
+        if block.discontinuity and self.pending:
+            out.extend(self._process())
+        if block.discontinuity:
+            self._restart_filters()
+        self.pending.append(block)
+        self.pending_n += block.n
+        if self.pending_n >= self.block_n:
+            out.extend(self._process())
+        return out
+
+    def _restart_filters(self) -> None:
+        """After a gap or a source restart: filters and transient state start afresh."""
+        self.sg_alpha.reset()
+        for f in self.sg_y:
+            f.reset()
+        self.flow_delay.reset()
+        self.settle_left = self.settings.diff_window
+        self.x = np.zeros(self.rank)
+        self.ring.clear()
+
+    def _process(self) -> list[Output]:
+        blocks, self.pending, self.pending_n = self.pending, [], 0
+        t = np.concatenate([b.t for b in blocks])
+        alpha = np.concatenate([b.alpha for b in blocks])
+        y = np.column_stack([np.concatenate([b.lift for b in blocks]),
+                             np.concatenate([b.curvature for b in blocks])])
+        n = t.size
+        flow = np.isfinite(y).all(axis=1)
+        y_f = np.where(flow[:, None], y, 0.0)  # the filters need finite input; masked below
+        d = self.sg_alpha.update(alpha)  # value, rate, acceleration, delayed by lag
+        ys = np.column_stack([self.sg_y[j].update(y_f[:, j])[:, 0] for j in range(2)])
+        flow_d = self.flow_delay.update(flow.astype(float)) > 0.5  # aligned with the filters
+        if self.alpha0 is None:  # cold start: the first data fix the operating point
+            self.alpha0 = float(d[0, 0])
+            self.y0 = ys[0].copy()
+        a = d[:, 0] - self.alpha0
+        ad, add = d[:, 1], d[:, 2]
+        dy = ys - self.y0
+        X, self.x = self.sim.run(self.A, self.B, ad, self.x)
+        ok = flow_d.copy()
+        if self.settle_left:
+            k = min(self.settle_left, n)
+            ok[:k] = False
+            self.settle_left -= k
+        phi = np.column_stack([a, ad, add, X, np.ones(n)])
+        if ok.any():
+            e = self.rls.update(phi[ok], dy[ok])
+            w = self.fit_lam ** np.arange(e.shape[0] - 1, -1, -1)[:, None]
+            decay = self.fit_lam ** e.shape[0]
+            self.fit_e2 = decay * self.fit_e2 + np.sum(w * e * e, axis=0)
+            yc = dy[ok] - self.rls.theta[-1]
+            self.fit_y2 = decay * self.fit_y2 + np.sum(w * yc * yc, axis=0)
+            self.ring.extend(np.column_stack([a, ad, add, dy])[ok])
+            self.rate_sq += float(np.sum(ad[ok] ** 2))
+            self.rate_n += int(np.count_nonzero(ok))
+        self.samples += n
+        self.since_slow += n
+        self.last_t = float(t[-1]) - self.lag * self.dt  # the newest sample the model has seen
+        outputs: list[Output] = []
+        if self.since_slow >= self.slow_n:
+            self.since_slow = 0
+            outputs.append(self._slow_update())
+            self.rate_sq, self.rate_n = 0.0, 0
+        return outputs
+
+    # ----------------------------------------------------------------------------------------
+    @property
+    def fit_nrmse(self) -> np.ndarray:
+        """A-priori (one-step, before update) normalised RMS error, recent window."""
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.sqrt(self.fit_e2 / np.maximum(self.fit_y2, 1e-300))
+
+    def _slow_update(self) -> Output:
+        s = self.settings
+        self.candidate_seq += 1
+        seq = self.candidate_seq
+        reason = ""
+        A_new, B_new = self.A, self.B
+        rls_new = None
+        x_new = self.x
+        hsv = np.zeros(0)
+        rms = math.degrees(math.sqrt(self.rate_sq / max(self.rate_n, 1)))
+        if rms < s.min_rate_rms_deg_s:
+            reason = (f"too little excitation since the last update (pitch-rate rms {rms:.2f} deg/s "
+                      f"< {s.min_rate_rms_deg_s} deg/s): hold-only data cannot confirm a model")
+        elif self.ring.size < self.window_n:
+            reason = (f"only {self.ring.size / self.rate:.1f} s of clean data since the start or the "
+                      f"last discontinuity; the slow layer needs {s.slow_window_s:.1f} s")
+        else:
+            try:
+                A_new, B_new, rls_new, x_new, hsv = self._realise_window()
+            except IdentificationError as exc:
+                reason = str(exc)
+        if not reason:
+            reason = self._gate(A_new, rls_new)
+        if reason:
+            self.rejections += 1
+            return self._model_output(seq, "rejected", reason, self.A, self.B, self.rls, hsv)
+        self.A, self.B, self.rls, self.x = A_new, B_new, rls_new, x_new
+        self.accepted += 1
+        return self._model_output(seq, "accepted", "", self.A, self.B, self.rls, hsv)
+
+    def _realise_window(self):
+        s = self.settings
+        W = self.ring.view()
+        a, ad, add, dy = W[:, 0], W[:, 1], W[:, 2], W[:, 3:5]
+        th = self.rls.theta
+        resid = dy - np.outer(a, th[0]) - np.outer(ad, th[1]) - np.outer(add, th[2]) - th[-1]
+        est = estimate_markov(ad, resid, self.rate, decimate=s.decimate, markov_s=s.markov_s,
+                              min_lags=2 * s.max_rank + 2, hyper=self.markov_hyper)
+        self.markov_hyper = est.hyper
+        tf = realise(est, None, max_rank=s.max_rank, energy=s.rank_energy, gap=None,
+                     previous_rank=self.rank if self.rank else None)
+        # Debounce: a new rank is taken only when two slow updates in a row ask for it, so a
+        # noisy Hankel spectrum does not flip the rank back and forth.
+        proposal = tf.rank
+        if self.rank and proposal != self.rank and proposal != self.rank_proposal:
+            try:
+                tf = realise(est, self.rank, max_rank=s.max_rank)
+            except IdentificationError:
+                pass  # the old rank no longer realises: take the new one now
+        self.rank_proposal = proposal
+        A_new, B_new = tf.A, tf.B.reshape(-1, 1)
+        r_old, r_new = self.rank, tf.rank
+        X_new, x_end = simulate_states(A_new, B_new[:, 0], ad)
+        T = None
+        if r_old == r_new and r_old > 0:
+            # Map the old states onto the new ones over the window: X_new ~ X_old T^T.
+            X_old, _ = simulate_states(self.A, self.B[:, 0], ad)
+            Tt, *_ = np.linalg.lstsq(X_old, X_new, rcond=None)
+            T = Tt.T
+            if not np.all(np.isfinite(T)) or np.linalg.cond(T) > 1e8:
+                T = None
+            else:
+                fit = np.linalg.norm(X_old @ Tt - X_new) / max(np.linalg.norm(X_new), 1e-300)
+                if fit > 0.05:  # not the same dynamics in another basis: refit instead
+                    T = None
+        if T is not None:
+            rls_new = self._new_rls(np.zeros((4 + r_new, 2)))
+            rls_new.load_state_dict(self.rls.state_dict())
+            rls_new.transform(T, columns=slice(3, 3 + r_new))
+        else:
+            # New rank (or a basis that does not map): refit over the window, from the current
+            # coefficient columns and the ERA output matrix as prior.
+            theta0 = np.vstack([th[0], th[1], th[2], tf.C.T, th[-1]])
+            rls_new = self._new_rls(theta0)
+            phi = np.column_stack([a, ad, add, X_new, np.ones(a.size)])
+            step = 1000
+            for k in range(0, a.size, step):
+                rls_new.update(phi[k:k + step], dy[k:k + step])
+        # Carry the new state to the present: the window ends where the data end.
+        return A_new, B_new, rls_new, x_end, tf.hankel_sv
+
+    def _gate(self, A: np.ndarray, rls: RecursiveLeastSquares) -> str:
+        s = self.settings
+        th = rls.theta
+        if not (np.all(np.isfinite(th)) and np.all(np.isfinite(A))):
+            return "the candidate has non-finite entries"
+        rho = float(np.max(np.abs(np.linalg.eigvals(A)))) if A.size else 0.0
+        if rho >= s.max_spectral_radius:
+            return (f"the transient is not stable with margin (spectral radius {rho:.6f} >= "
+                    f"{s.max_spectral_radius})")
+        fit = self.fit_nrmse
+        worst = float(np.nanmax(fit)) if np.any(np.isfinite(fit)) else float("inf")
+        if not worst <= s.max_nrmse:
+            return (f"the recent one-step prediction error ({100 * worst:.1f} %) is above "
+                    f"{100 * s.max_nrmse:.0f} %")
+        lo, hi = s.qs_lift_bounds
+        if not lo <= th[0, 0] <= hi:
+            return (f"the quasi-steady lift coefficient {th[0, 0]:.3f} per rad is outside the "
+                    f"physical bounds [{lo}, {hi}]")
+        if self.reference is not None:
+            ref = self.reference.k_qs[1]
+            if ref != 0 and np.sign(th[0, 1]) != np.sign(ref):
+                return "the quasi-steady curvature coefficient changed sign against the reference"
+        return ""
+
+    # ----------------------------------------------------------------------------------------
+    def _coefficients(self, rls: RecursiveLeastSquares) -> tuple[dict, dict]:
+        th = rls.theta
+        lo, hi = rls.intervals(0.95)
+        rows = {"quasi_steady": 0, "rate": 1, "added_mass": 2, "bias": -1}
+        coef = {k: _pair(th[i]) for k, i in rows.items()}
+        intervals = {k: {o: [float(lo[i, j]), float(hi[i, j])] for j, o in enumerate(OUTPUT_KEYS)}
+                     for k, i in rows.items()}
+        return coef, intervals
+
+    def _modes(self, A: np.ndarray, B: np.ndarray, C: np.ndarray) -> list[dict[str, Any]]:
+        if A.size == 0:
+            return []
+        m = modal_parameters(A, self.dt, C=C, B=B)
+        keep = m.oscillatory
+        if not np.any(keep):
+            return []
+        f, z = m.frequency_hz[keep], m.damping[keep]
+        shapes = m.shapes[:, keep]
+        labels = self.tracker.update(f, z, shapes)
+        part = m.participation[:, keep] if m.participation is not None else np.zeros((2, f.size))
+        order = np.argsort(labels)
+        return [{"id": int(labels[i]), "freq_hz": float(f[i]), "damping": float(z[i]),
+                 "participation": [float(part[0, i]), float(part[1, i])]} for i in order]
+
+    def _model_output(self, seq: int, status: str, reason: str, A, B, rls, hsv) -> Output:
+        th = rls.theta
+        r = A.shape[0]
+        C = th[3:3 + r].T
+        coef, intervals = self._coefficients(rls)
+        modes = self._modes(A, B, C) if status != "rejected" else (
+            self.in_service["modes"] if self.in_service else [])
+        body: dict[str, Any] = {
+            "model_id": f"M{seq:06d}",
+            "seq": seq,
+            "status": status,
+            "reason": reason,
+            "t": self.last_t,
+            "dt": self.dt,
+            "rank": r,
+            "input": "alpha_dot",
+            "outputs": list(OUTPUT_KEYS),
+            "A": A,
+            "B": B,
+            "C": C,
+            "coefficients": coef,
+            "intervals": intervals,
+            "operating_point": {"alpha_rad": self.alpha0, "lift": float(self.y0[0]),
+                                "curvature": float(self.y0[1])},
+            "modes": modes,
+            "fit": {"lift": float(self.fit_nrmse[0]), "curvature": float(self.fit_nrmse[1]),
+                    "window_s": self.settings.fit_half_life_s},
+            "excitation": float(rls.excitation_of([0, 1, 2])),
+            "hankel_sv": np.asarray(hsv, dtype=float),
+        }
+        if self.reference is not None:
+            ref = self.reference
+            body["reference"] = {k: _pair(ref.coefficient(k)) for k in COEFFICIENT_KEYS}
+            body["reference_sd"] = {k: _pair(ref.sd[k]) for k in COEFFICIENT_KEYS}
+        else:
+            body["reference"] = None
+        if status != "rejected":
+            self.in_service = body
+        return Output("model", body)
+
+    def _announce(self, t: float) -> Output:
+        """Publish the starting point: the reference model, or a cold start flagged as such."""
+        ref = self.reference
+        if ref is None:
+            body = {"model_id": "M000000", "seq": 0, "status": "rejected",
+                    "reason": "running cold: no reference model loaded; the first validated "
+                              "update will be the first model", "t": t, "dt": self.dt, "rank": 0,
+                    "reference": None, "coefficients": {}, "intervals": {}, "modes": []}
+            return Output("model", body)
+        out = self._model_output(0, "reference", "", self.A, self.B, self.rls, ref.hankel_sv)
+        out.body["t"] = t
+        return out
+
+    # ----------------------------------------------------------------------------------------
+    def snapshot(self) -> dict[str, Any] | None:
+        """The model in service (as published), or None."""
+        return self.in_service
+
+    def state_dict(self) -> dict[str, Any]:
+        return {
+            "sg_alpha": self.sg_alpha.state_dict(),
+            "sg_y": [f.state_dict() for f in self.sg_y],
+            "flow_delay": self.flow_delay.state_dict(),
+            "alpha0": self.alpha0,
+            "y0": None if self.y0 is None else self.y0.tolist(),
+            "A": self.A.copy(), "B": self.B.copy(), "x": self.x.copy(),
+            "rls": self.rls.state_dict(),
+            "pending": [(b.t.copy(), b.alpha.copy(), b.lift.copy(), b.curvature.copy(),
+                         b.discontinuity) for b in self.pending],
+            "samples": self.samples, "since_slow": self.since_slow,
+            "settle_left": self.settle_left,
+            "ring": {"buf": self.ring.buf.copy(), "n": self.ring.n, "head": self.ring.head},
+            "fit_e2": self.fit_e2.copy(), "fit_y2": self.fit_y2.copy(),
+            "candidate_seq": self.candidate_seq, "last_t": self.last_t,
+            "tracker": self.tracker.state_dict(), "announced": self.announced,
+            "markov_hyper": self.markov_hyper, "rank_proposal": self.rank_proposal,
+            "rejections": self.rejections, "accepted": self.accepted,
+            "rate_sq": self.rate_sq, "rate_n": self.rate_n,
+            "in_service": self.in_service,
+        }
+
+    def load_state_dict(self, st: dict[str, Any]) -> None:
+        self.reset()
+        self.sg_alpha.load_state_dict(st["sg_alpha"])
+        for f, s in zip(self.sg_y, st["sg_y"]):
+            f.load_state_dict(s)
+        self.flow_delay.load_state_dict(st["flow_delay"])
+        self.alpha0 = st["alpha0"]
+        self.y0 = None if st["y0"] is None else np.array(st["y0"], dtype=float)
+        self.A = np.array(st["A"], dtype=float).reshape(np.shape(st["A"]))
+        self.B = np.array(st["B"], dtype=float).reshape(self.A.shape[0], 1)
+        self.x = np.array(st["x"], dtype=float).reshape(self.A.shape[0])
+        rs = st["rls"]
+        self.rls = self._new_rls(np.zeros((int(rs["n_regressors"]), 2)))
+        self.rls.load_state_dict(rs)
+        self.pending = []
+        self.pending_n = 0
+        for t, al, li, cu, disc in st["pending"]:
+            t = np.asarray(t, dtype=float)
+            blk = ConditionedBlock(t=t, alpha=np.asarray(al, float), lift=np.asarray(li, float),
+                                   curvature=np.asarray(cu, float), dynamic_pressure=np.zeros(t.size),
+                                   si=np.zeros((t.size, 0)), seq=-1, discontinuity=bool(disc))
+            self.pending.append(blk)
+            self.pending_n += blk.n
+        self.samples = int(st["samples"])
+        self.since_slow = int(st["since_slow"])
+        self.settle_left = int(st["settle_left"])
+        self.ring.buf = np.array(st["ring"]["buf"], dtype=float)
+        self.ring.n = int(st["ring"]["n"])
+        self.ring.head = int(st["ring"]["head"])
+        self.fit_e2 = np.array(st["fit_e2"], dtype=float)
+        self.fit_y2 = np.array(st["fit_y2"], dtype=float)
+        self.candidate_seq = int(st["candidate_seq"])
+        self.last_t = float(st["last_t"])
+        self.tracker.load_state_dict(st["tracker"])
+        self.announced = bool(st["announced"])
+        self.markov_hyper = st["markov_hyper"]
+        self.rank_proposal = int(st["rank_proposal"])
+        self.rejections = int(st["rejections"])
+        self.accepted = int(st["accepted"])
+        self.rate_sq = float(st["rate_sq"])
+        self.rate_n = int(st["rate_n"])
+        self.in_service = st["in_service"]

@@ -1,0 +1,193 @@
+"""Online identifier: a known system in the model class, batch least-squares equivalence,
+the validity gate on a hold, restart equivalence, and the replay summary."""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import pytest
+import scipy.signal
+
+from wingwatch.daemon.codec import SensorFrame, decode_message, encode_sensor_frame
+from wingwatch.daemon.config import load_config
+from wingwatch.daemon.identifier import OnlineIdentifier
+from wingwatch.daemon.identify.interpretable import regressor, simulate_states
+from wingwatch.daemon.modelfile import ReferenceModel
+from wingwatch.daemon.pipeline import Pipeline, Session
+
+CFG = load_config()
+RATE = 1000.0
+# A plant in the model class (invented demo numbers): one 3 Hz mode and one slow real pole.
+KQS = np.array([3.6, 10.0])
+KRATE = np.array([0.3, 0.8])
+KAM = np.array([0.01, 0.03])
+W, Z = 2 * np.pi * 3.0, 0.08
+AC = np.array([[0.0, 1.0, 0.0], [-W * W, -2 * Z * W, 0.0], [0.0, 0.0, -1.5]])
+BC = np.array([[0.0], [1.0], [1.0]])
+CX = np.array([[0.0, 0.01, -0.5], [2.0, 0.0, -1.0]])
+
+
+def plant_d():
+    Ad, Bd, *_ = scipy.signal.cont2discrete((AC, BC, CX, np.zeros((2, 1))), 1 / RATE, method="zoh")
+    return Ad, Bd
+
+
+def motion(n, seed=0, hold_from=None, bandwidth=3.0):
+    rng = np.random.default_rng(seed)
+    # Band-limited to 3 Hz by a 6th-order filter, so that alpha_ddot is band-limited too (the
+    # differentiator sees the same signal the plant saw).
+    b, a = scipy.signal.butter(6, bandwidth, fs=RATE)
+    u = scipy.signal.lfilter(b, a, rng.standard_normal(n))
+    alpha = np.radians(4.0) + np.radians(1.0) * u / u.std()
+    if hold_from is not None:
+        alpha[hold_from:] = alpha[hold_from]
+    ad = np.gradient(alpha, 1 / RATE)
+    add = np.gradient(ad, 1 / RATE)
+    return alpha, ad, add
+
+
+def outputs(alpha, ad, add, alpha0=np.radians(4.0)):
+    Ad, Bd = plant_d()
+    X, _ = simulate_states(Ad, Bd[:, 0], ad)
+    y = np.outer(alpha - alpha0, KQS) + np.outer(ad, KRATE) + np.outer(add, KAM) + X @ CX.T
+    return y + np.array([0.25, 0.7])  # operating-point outputs
+
+
+def frames(alpha, y, noise=0.0, seed=1):
+    """Raw frames through the inverse of the default channel map."""
+    rng = np.random.default_rng(seed)
+    ch = CFG.channels
+    q = 80.0
+    S = CFG.outputs.lift.reference_area_m2
+    t = CFG.outputs.curvature.thickness_m
+    cl = y[:, 0] + noise * rng.standard_normal(len(alpha))
+    kap = y[:, 1] + noise * rng.standard_normal(len(alpha))
+    si = {"pitch_enc": alpha, "balance_lift": cl * q * S, "q_pitot": np.full(len(alpha), q),
+          "strain_root": kap * t / 2, "strain_mid": kap * t / 4}
+    raw = np.column_stack([(si[c] - ch[c].offset) / ch[c].gain for c in CFG.streams["rig"].channels])
+    for i in range(0, len(alpha), 10):
+        f = SensorFrame("rig", i // 10, i / RATE, RATE, CFG.streams["rig"].channels, raw[i:i + 10])
+        yield encode_sensor_frame(f)
+
+
+def run(cfg, msgs, reference=None):
+    p = Pipeline(cfg)
+    ident = OnlineIdentifier(cfg, reference)
+    p.stages.append(ident)
+    out = []
+    s = Session(p, sink=lambda t, pl: out.append(decode_message(pl)))
+    for topic, payload in msgs:
+        s.inbound([topic, payload], 0.0)
+    return ident, [m for m in out if m["kind"] == "model"]
+
+
+def with_identify(**kw):
+    return dataclasses.replace(CFG, identify={**CFG.identify, **kw})
+
+
+def test_known_system_coefficients_modes_and_rank_recovered():
+    n = 60000
+    alpha, ad, add = motion(n)
+    y = outputs(alpha, ad, add)
+    ident, models = run(CFG, frames(alpha, y, noise=1e-3))
+    acc = [m for m in models if m["status"] == "accepted"]
+    assert len(acc) >= 10
+    last = acc[-1]
+    c, iv = last["coefficients"], last["intervals"]
+    for j, out in enumerate(("lift", "curvature")):
+        # Reference: the plant's own coefficients; within 3 % (differentiation lag and the
+        # decimated transient both bias a little; the plant is in the model class).
+        assert c["quasi_steady"][out] == pytest.approx(KQS[j], rel=0.03)
+        assert iv["quasi_steady"][out][0] < c["quasi_steady"][out] < iv["quasi_steady"][out][1]
+    modes = last["modes"]
+    osc = [m for m in modes if 2.0 < m["freq_hz"] < 4.0]
+    assert osc, modes
+    # Reference: the plant's 3.00 Hz, zeta 0.08 mode; 2 % in frequency, 25 % in damping.
+    assert osc[0]["freq_hz"] == pytest.approx(3.0, rel=0.02)
+    assert osc[0]["damping"] == pytest.approx(Z, rel=0.25)
+    # The oscillatory pair and the real pole need three states; band-limited excitation (3 Hz
+    # here, at the mode) leaves the Hankel spectrum without a clean gap, so a few more states
+    # are taken (rank hysteresis keeps it from wandering).
+    assert 3 <= last["rank"] <= 8
+    assert last["fit"]["lift"] < 0.05 and last["fit"]["curvature"] < 0.05
+
+
+def test_fast_layer_without_forgetting_equals_batch_least_squares():
+    # With forgetting and the windup gate off, fixed (A, B) from a reference and no slow
+    # updates, the fast layer's estimate must equal numpy.linalg.lstsq on the same regressor
+    # (Ljung & Soderstrom: RLS with lam = 1 is recursive least squares).
+    n = 8000
+    alpha, ad, add = motion(n, seed=3)
+    y = outputs(alpha, ad, add)
+    Ad, Bd = plant_d()
+    ref = ReferenceModel(dt=1 / RATE, A=Ad, B=Bd, C=np.zeros((2, 3)), k_qs=np.zeros(2),
+                         k_rate=np.zeros(2), k_am=np.zeros(2), bias=np.zeros(2),
+                         sd={k: np.ones(2) for k in ("quasi_steady", "rate", "added_mass", "bias")},
+                         operating_point={"alpha_rad": float(np.radians(4.0)), "lift": 0.25,
+                                          "curvature": 0.7})
+    cfg = with_identify(half_life_s=float("inf"), gate=0.0, slow_period_s=1000.0)
+    ident, _ = run(cfg, frames(alpha, y), ref)
+    # Rebuild the same regressor offline from the identifier's own conditioning.
+    from wingwatch.daemon.identify.differentiate import differentiate
+
+    w, order = ident.settings.diff_window, ident.settings.diff_order
+    d, _ = differentiate(alpha, w, order, 1 / RATE)
+    ys = np.column_stack([differentiate(y[:, j], w, order, 1 / RATE)[0][:, 0] for j in range(2)])
+    X, _ = simulate_states(Ad, Bd[:, 0], d[:, 1])
+    phi = regressor(d[:, 0] - np.radians(4.0), d[:, 1], d[:, 2], X)
+    dy = ys - np.array([0.25, 0.7])
+    keep = np.arange(n) >= w  # the identifier skips the samples while its filters fill
+    theta, *_ = np.linalg.lstsq(phi[keep], dy[keep], rcond=None)
+    # 1e-8 relative: the issue's tolerance (the RLS carries no prior weight)
+    np.testing.assert_allclose(ident.rls.theta, theta, rtol=1e-8, atol=1e-10)
+
+
+def test_hold_is_rejected_and_previous_model_stays_in_service():
+    n = 40000
+    alpha, ad, add = motion(n, seed=5, hold_from=22000)
+    y = outputs(alpha, ad, add)
+    ident, models = run(CFG, frames(alpha, y, noise=1e-3))
+    before = [m for m in models if m["t"] < 21.0 and m["status"] == "accepted"]
+    after = [m for m in models if m["t"] > 30.0]
+    assert before and after
+    assert all(m["status"] == "rejected" and "excitation" in m["reason"] for m in after)
+    assert ident.in_service["model_id"] == max(before, key=lambda m: m["seq"])["model_id"] or \
+        ident.in_service["t"] < 30.0
+
+
+def test_restart_from_state_dict_continues_identically():
+    n = 30000
+    alpha, ad, add = motion(n, seed=7)
+    y = outputs(alpha, ad, add)
+    msgs = list(frames(alpha, y, noise=1e-3))
+    cut = 1500  # 15 s in
+    p1 = Pipeline(CFG)
+    a = OnlineIdentifier(CFG)
+    p1.stages.append(a)
+    out_a = []
+    s1 = Session(p1, sink=lambda t, pl: out_a.append(pl))
+    for m in msgs[:cut]:
+        s1.inbound(list(m), 0.0)
+    state = p1.state_dict()
+    p2 = Pipeline(CFG)
+    b = OnlineIdentifier(CFG)
+    p2.stages.append(b)
+    p2.load_state_dict(state)
+    out_b = []
+    s2 = Session(p2, sink=lambda t, pl: out_b.append(pl))
+    s2.pub_seq = dict(s1.pub_seq)
+    n_before = len(out_a)
+    for m in msgs[cut:]:
+        s1.inbound(list(m), 0.0)
+        s2.inbound(list(m), 0.0)
+    assert len(out_a) - n_before == len(out_b) > 3
+    assert out_a[n_before:] == out_b  # byte for byte
+
+
+def test_cold_start_is_flagged():
+    n = 3000
+    alpha, ad, add = motion(n)
+    _, models = run(CFG, frames(alpha, outputs(alpha, ad, add)))
+    assert models[0]["status"] == "rejected" and "running cold" in models[0]["reason"]
+    assert models[0]["reference"] is None
