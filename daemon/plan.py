@@ -77,7 +77,7 @@ MAX_PLAN_SAMPLES = 100_000
 COMMAND_SCHEMA = 1
 COMMAND_TOPIC = b"cmd.alpha"
 
-_NAME_RE = re.compile(r"^[A-Za-z0-9_.-]{1,64}$")  # like a stream name (docs/protocol.md)
+_NAME_RE = re.compile(r"[A-Za-z0-9_.-]{1,64}")  # like a stream name (docs/protocol.md); fullmatch
 _PLAN_KEYS = ("v", "kind", "controller", "t0", "dt", "alpha")
 _COMMAND_KEYS = ("v", "kind", "t", "alpha")
 _ARRAY_KEYS = {"dtype", "shape", "data"}
@@ -136,7 +136,7 @@ def encode_plan(controller: str, t0: float, dt: float, alpha: Any) -> tuple[byte
     ValueError
         Naming the parameter, when the plan would be refused by :func:`decode_plan`.
     """
-    if not isinstance(controller, str) or not _NAME_RE.match(controller):
+    if not isinstance(controller, str) or not _NAME_RE.fullmatch(controller):
         raise ValueError("controller must be 1-64 characters of A-Z a-z 0-9 _ . -")
     if not _finite_number(t0) or abs(t0) > _T_MAX:
         raise ValueError(f"t0 must be a finite source time within 1e12 s, not {t0!r}")
@@ -214,7 +214,7 @@ def decode_plan(topic: bytes, payload: bytes, max_bytes: int = 4 << 20) -> Plan:
     if msg["kind"] != "plan":
         raise FrameRejected("bad_field", "field 'kind' must be 'plan'")
     controller = msg["controller"]
-    if not isinstance(controller, str) or not _NAME_RE.match(controller):
+    if not isinstance(controller, str) or not _NAME_RE.fullmatch(controller):
         raise FrameRejected("bad_field", "field 'controller' must be 1-64 characters of A-Z a-z 0-9 _ . -")
     if topic != plan_topic(controller):
         shown = topic[:80].decode("ascii", "replace")
