@@ -82,8 +82,11 @@ def machine_info() -> dict[str, Any]:
     try:
         commit = subprocess.run(["git", "-C", str(REPO), "rev-parse", "--short", "HEAD"],
                                 capture_output=True, text=True, timeout=10).stdout.strip() or None
+        dirty = sorted({line[3:].split("/")[0] for line in subprocess.run(
+            ["git", "-C", str(REPO), "status", "--porcelain", "--untracked-files=no", "daemon", "clients"],
+            capture_output=True, text=True, timeout=10).stdout.splitlines() if len(line) > 3})
     except (OSError, subprocess.SubprocessError):
-        commit = None
+        commit, dirty = None, []
     return {
         "date": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
         "cpu_model": _cpu_model(),
@@ -96,6 +99,7 @@ def machine_info() -> dict[str, Any]:
         "system": f"{platform.system()} {platform.release()}",
         "wingwatch": __version__,
         "commit": commit,
+        "uncommitted_changes_in": dirty,  # figures then reflect the working tree, not the commit
         "openblas_num_threads": os.environ.get("OPENBLAS_NUM_THREADS"),
     }
 

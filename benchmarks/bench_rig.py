@@ -7,6 +7,7 @@ prints a table plus one JSON object (also written to ``benchmarks/results/bench_
 
     python benchmarks/bench_rig.py            # the standard cases
     python benchmarks/bench_rig.py --full     # adds the whole 15-minute campaign
+    python -m benchmarks --only rig [--quick] # through the suite (table + results/latest.json)
 
 The real-time factor is simulated source time divided by wall time. A script, not a test: timing is
 never asserted in the test suite.
@@ -25,13 +26,16 @@ import sys  # noqa: E402
 import time  # noqa: E402
 from pathlib import Path  # noqa: E402
 
+if __package__ in (None, ""):
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
 import numpy as np  # noqa: E402
 
 from wingwatch.daemon.rig.plate import PlateSimulator  # noqa: E402
 from wingwatch.daemon.rig.source import VirtualRig  # noqa: E402
 from wingwatch.daemon.version import __version__  # noqa: E402
 
-__all__ = ["main"]
+__all__ = ["main", "run"]
 
 
 def _physics_only(seconds: float) -> dict:
@@ -59,6 +63,30 @@ def _rig(name: str, seconds: float | None) -> dict:
     wall = time.perf_counter() - t0
     return {"case": f"VirtualRig '{name}' frames ({rig.duration_s:g} s)", "samples": n,
             "source_s": rig.duration_s, "wall_s": wall, "states": None}
+
+
+def run(quick: bool = False) -> dict:
+    """The suite's entry point (see :mod:`benchmarks`): the rig at 1 kHz, as ratios to real time."""
+    from benchmarks import table, target
+
+    if quick:
+        cases = [_physics_only(2.0), _rig("stationary", 3.0)]
+    else:
+        cases = [_physics_only(20.0), _rig("stationary", 60.0), _rig("campaign", 200.0)]
+    rows = []
+    for c in cases:
+        rows.append([c["case"], c["samples"], c["wall_s"], c["samples"] / c["wall_s"],
+                     c["source_s"] / c["wall_s"]])
+    phys, frames = rows[0][4], rows[1][4]
+    summary = {"rig_rtf_1khz": frames, "physics_rtf_1khz": phys,
+               "frames_over_physics": frames / phys}
+    return {"name": "rig", "title": "virtual rig throughput at 1 kHz (one core, one BLAS thread)",
+            "tables": [table("virtual rig at 1 kHz", ["case", "samples", "wall s", "samples/s",
+                                                      "x real time"], rows)],
+            "summary": summary,
+            "targets": [target("rig real-time factor at 1 kHz (issue 4: >= 5)", frames, 5.0)],
+            "notes": ["Not pinned to one CPU when run through the suite (the suite's other "
+                      "benchmarks start subprocesses); the standalone script pins itself."]}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -101,7 +101,9 @@ def to_markdown(doc: dict[str, Any]) -> str:
         f"- machine: {m['cpu_model']}, {m['cores']} cores ({m.get('cores_usable')} usable), "
         f"{m['system']}, {m['machine']}",
         f"- software: Python {m['python']}, numpy {m['numpy']}, wingwatch {m['wingwatch']} "
-        f"(commit {m.get('commit')}), OPENBLAS_NUM_THREADS={m.get('openblas_num_threads')}",
+        f"(commit {m.get('commit')}"
+        f"{', with uncommitted changes in ' + '/'.join(m['uncommitted_changes_in']) if m.get('uncommitted_changes_in') else ''}"
+        f"), OPENBLAS_NUM_THREADS={m.get('openblas_num_threads')}",
         f"- load average (1, 5, 15 min) at start: {load}; at end: {load_end} "
         "(other jobs share these cores: absolute times are inflated, ratios less so)",
         "",
