@@ -63,9 +63,9 @@ IDENTIFY_DEFAULTS: dict[str, Any] = {
     "half_life_s": 30.0,
     "gate": 0.1,
     "slow_period_s": 2.0,
-    "slow_window_s": 10.0,
+    "slow_window_s": 20.0,
     "decimate": 20,
-    "markov_s": 2.5,
+    "markov_s": 5.0,
     "max_rank": 10,
     "rank_energy": 0.95,
     "fit_half_life_s": 5.0,
@@ -309,6 +309,9 @@ class OnlineIdentifier:
         self.accepted = 0
         self.rate_sq = 0.0  # pitch-rate energy since the last slow update (excitation gate)
         self.rate_n = 0
+        self._clear_window()
+        self.last_window: dict[str, Any] | None = None
+        self.last_block: dict[str, Any] | None = None
 
     def _new_rls(self, theta0: np.ndarray) -> RecursiveLeastSquares:
         s = self.settings
@@ -384,15 +387,60 @@ class OnlineIdentifier:
             self.ring.extend(np.column_stack([a, ad, add, dy])[ok])
             self.rate_sq += float(np.sum(ad[ok] ** 2))
             self.rate_n += int(np.count_nonzero(ok))
+            po, yo = phi[ok], dy[ok]
+            self.win_G += po.T @ po  # window statistics since the last slow update (watchers)
+            self.win_b += po.T @ yo
+            self.win_yy += np.sum(yo * yo, axis=0)
+            self.win_n += po.shape[0]
+        # What the watchers see of this block (aligned, deviations about the operating point).
+        self.last_block = {"t": t - self.lag * self.dt, "a": a, "ad": ad, "add": add, "dy": dy,
+                           "X": X, "ok": ok}
         self.samples += n
         self.since_slow += n
         self.last_t = float(t[-1]) - self.lag * self.dt  # the newest sample the model has seen
         outputs: list[Output] = []
         if self.since_slow >= self.slow_n:
             self.since_slow = 0
+            self.last_window = self._window_estimate()
             outputs.append(self._slow_update())
             self.rate_sq, self.rate_n = 0.0, 0
+            self._clear_window()
         return outputs
+
+    def _clear_window(self) -> None:
+        p = 4 + self.rank
+        self.win_G = np.zeros((p, p))
+        self.win_b = np.zeros((p, 2))
+        self.win_yy = np.zeros(2)
+        self.win_n = 0
+
+    def _window_estimate(self) -> dict[str, Any] | None:
+        """Batch least squares of the columns over the data since the last slow update, in the
+        basis in service then: independent from window to window (the drift detectors' input).
+        Standard errors from the residual variance (white-noise formula)."""
+        p = self.win_G.shape[0]
+        if self.win_n < 4 * p:
+            return None
+        G = self.win_G + 1e-12 * np.trace(self.win_G) / p * np.eye(p)
+        try:
+            cf = np.linalg.cholesky(G)
+        except np.linalg.LinAlgError:
+            return None
+        theta = np.linalg.solve(G, self.win_b)
+        sse = np.maximum(self.win_yy - np.sum(theta * self.win_b, axis=0), 0.0)
+        s2 = sse / max(self.win_n - p, 1)
+        Ginv_diag = np.sum(np.linalg.inv(cf) ** 2, axis=0)  # diag(G^-1) from the factor
+        se = np.sqrt(np.outer(Ginv_diag, s2))
+        # The interpretable columns with the transient output matrix held at the fast layer's
+        # C: four unknowns per output, well determined even from a short window.
+        idx = np.array([0, 1, 2, p - 1])
+        fix = np.arange(3, p - 1)
+        th_fix = self.rls.theta[fix] if fix.size else np.zeros((0, 2))
+        Gii = self.win_G[np.ix_(idx, idx)] + 1e-12 * np.trace(self.win_G) / p * np.eye(4)
+        rhs = self.win_b[idx] - self.win_G[np.ix_(idx, fix)] @ th_fix
+        theta_i = np.linalg.solve(Gii, rhs)
+        return {"theta": theta, "se": se, "n": self.win_n, "t": self.last_t, "s2": s2,
+                "interpretable": theta_i}
 
     # ----------------------------------------------------------------------------------------
     @property
@@ -609,6 +657,7 @@ class OnlineIdentifier:
             "markov_hyper": self.markov_hyper, "rank_proposal": self.rank_proposal,
             "rejections": self.rejections, "accepted": self.accepted,
             "rate_sq": self.rate_sq, "rate_n": self.rate_n,
+            "win": [self.win_G.copy(), self.win_b.copy(), self.win_yy.copy(), self.win_n],
             "in_service": self.in_service,
         }
 
@@ -653,4 +702,7 @@ class OnlineIdentifier:
         self.accepted = int(st["accepted"])
         self.rate_sq = float(st["rate_sq"])
         self.rate_n = int(st["rate_n"])
+        G, b, yy, wn = st["win"]
+        self.win_G, self.win_b = np.array(G, dtype=float), np.array(b, dtype=float)
+        self.win_yy, self.win_n = np.array(yy, dtype=float), int(wn)
         self.in_service = st["in_service"]

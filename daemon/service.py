@@ -49,8 +49,12 @@ def make_pipeline(config: Config, reference: Any = None, *, identify: bool = Tru
         from wingwatch.daemon.identifier import OnlineIdentifier
         from wingwatch.daemon.modelfile import load_model
 
+        from wingwatch.daemon.watch.stage import Watcher
+
         ref = load_model(reference) if isinstance(reference, (str, Path)) else reference
-        p.stages.append(OnlineIdentifier(config, ref))
+        ident = OnlineIdentifier(config, ref)
+        p.stages.append(ident)
+        p.stages.append(Watcher(config, ident))
     return p
 
 

@@ -1,0 +1,529 @@
+"""The watch stage: drift, stale model, sensor health and curvature margin (all advisory).
+
+It runs after the identification stage and reads its explicit state (the model in service,
+the window estimate of every slow update, the aligned samples of every block). Detectors:
+
+- **Coefficient drift**: at every slow update, for each interpretable coefficient (quasi-steady,
+  rate, added mass; lift and curvature) the window estimate's standardised deviation from the
+  reference, ``z = (theta_w - theta_ref) / sqrt(se_w^2 + sd_ref^2 + (tol theta_ref)^2)``, into a
+  two-sided CUSUM (Page 1954). Window estimates of successive slow updates use disjoint data,
+  so ``z`` is close to independent from one evaluation to the next, as the CUSUM design
+  assumes. The tolerance term is the modelling band within which a coefficient counts as
+  unchanged (operating-point nonlinearity; ``watch.coefficient_tolerance``). Thresholds come
+  from the target false-alarm rate through Siegmund's approximation of the average run
+  length (see :mod:`.cusum` and docs/watch.md): at most ``watch.false_alarm_per_hours`` hours
+  between false alarms over all statistics together (Bonferroni split).
+- **Mode drift**: the tracked mode nearest the reference's dominant mode, frequency and damping
+  against the reference within relative tolerances, same CUSUM treatment; and a damping trend:
+  damping regressed on dynamic pressure over the recent updates, extrapolated to zero damping
+  (the dynamic pressure at which the mode would lose its damping), advisory when the
+  extrapolation falls within ``watch.damping_q_margin`` times the present dynamic pressure. The
+  Zimmerman-Weissenburger flutter margin (J. Aircraft 1(4), 1964) is reported when two modes are
+  tracked (:func:`flutter_margin`).
+- **Stale model**: the reference model (the one the controller started with) run on the live
+  data; the ratio of its prediction residual rms over each slow-update window to its residual
+  level at calibration; "the controller's model no longer fits" when the ratio stays above
+  ``watch.stale_ratio``.
+- **Sensor health**: per strain/force/pressure channel, a stuck channel (no variation at all
+  over a window where it normally varies), a noise-level change (window noise against the
+  first minute's), and zero drift of the curvature gauge: a curvature residual bias that moves
+  while alpha holds and lift still fits. A suspected sensor fault suspends the structural drift
+  statistics of the output it affects, so it is not reported as structural drift.
+- **Curvature margin**: :class:`.margin.MarginForecaster` every block.
+
+Every warning carries the advisory caution and defers to the facility's safety procedures.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from wingwatch.daemon.condition import ConditionedBlock
+from wingwatch.daemon.config import Config
+from wingwatch.daemon.errors import ConfigError
+from wingwatch.daemon.identifier import OnlineIdentifier
+from wingwatch.daemon.identify.modes import modal_parameters
+from wingwatch.daemon.pipeline import Output
+from wingwatch.daemon.watch.cusum import Cusum, threshold_for_arl
+from wingwatch.daemon.watch.margin import MarginForecaster
+from wingwatch.daemon.watch.warnings import WarningBook
+
+__all__ = ["WatchSettings", "Watcher", "flutter_margin", "WATCH_DEFAULTS"]
+
+WATCH_DEFAULTS: dict[str, Any] = {
+    "period_s": 0.5,
+    "false_alarm_per_hours": 8.0,
+    "cusum_k": 0.5,
+    "coefficient_tolerance": 0.03,
+    "mode_freq_tolerance": 0.05,
+    "mode_damping_tolerance": 0.3,
+    "stale_ratio": 2.5,
+    "margin_horizon_s": 1.0,
+    "margin_advisory": 0.25,
+    "margin_caution": 0.10,
+    "damping_q_margin": 1.5,
+    "dwell_s": 2.0,
+    "noise_ratio": 3.0,
+    "baseline_s": 60.0,
+    "watch_rate_and_added_mass": 0.0,
+}
+
+COEFS = (("quasi_steady", 0), ("rate", 1), ("added_mass", 2))
+OUTS = ("lift", "curvature")
+
+
+def flutter_margin(b1: float, w1: float, b2: float, w2: float) -> float:
+    """Zimmerman-Weissenburger flutter margin for two modes ``s = -b_i +- i w_i``.
+
+    F = ((w2^2 - w1^2)/2 + (b2^2 - b1^2)/2)^2 + 4 b1 b2 ((w2^2 + w1^2)/2 + 2 ((b2 + b1)/2)^2)
+        - ((b2 - b1)/(b2 + b1) (w2^2 - w1^2)/2 + 2 ((b2 + b1)/2)^2)^2
+
+    (N. H. Zimmerman and J. T. Weissenburger, "Prediction of flutter onset speed based on flight
+    testing at subcritical speeds", J. Aircraft 1(4), 1964). F -> 0 at flutter.
+
+    >>> round(flutter_margin(0.5, 2.0, 0.2, 3.0), 4)
+    7.751
+    """
+    bs = (b2 + b1) / 2.0
+    d = (w2 * w2 - w1 * w1) / 2.0
+    return ((d + (b2 * b2 - b1 * b1) / 2.0) ** 2
+            + 4.0 * b1 * b2 * ((w2 * w2 + w1 * w1) / 2.0 + 2.0 * bs * bs)
+            - ((b2 - b1) / (b2 + b1) * d + 2.0 * bs * bs) ** 2)
+
+
+@dataclass(frozen=True)
+class WatchSettings:
+    period_s: float
+    false_alarm_per_hours: float
+    cusum_k: float
+    coefficient_tolerance: float
+    mode_freq_tolerance: float
+    mode_damping_tolerance: float
+    stale_ratio: float
+    margin_horizon_s: float
+    margin_advisory: float
+    margin_caution: float
+    damping_q_margin: float
+    dwell_s: float
+    noise_ratio: float
+    baseline_s: float
+    watch_rate_and_added_mass: float
+
+    @classmethod
+    def from_config(cls, config: Config) -> "WatchSettings":
+        raw = dict(WATCH_DEFAULTS)
+        for k, v in config.watch.items():
+            if k not in WATCH_DEFAULTS:
+                raise ConfigError(f"{config.source}: key 'watch.{k}' is not a known key (allowed "
+                                  f"here: {', '.join(sorted(WATCH_DEFAULTS))}).")
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or v < 0:
+                raise ConfigError(f"{config.source}: key 'watch.{k}' must be a non-negative number.")
+            raw[k] = float(v)
+        for k in ("period_s", "false_alarm_per_hours", "margin_horizon_s", "stale_ratio"):
+            if raw[k] <= 0:
+                raise ConfigError(f"{config.source}: key 'watch.{k}' must be greater than zero.")
+        if not raw["margin_caution"] < raw["margin_advisory"] < 1:
+            raise ConfigError(f"{config.source}: keys 'watch.margin_caution' < "
+                              "'watch.margin_advisory' < 1 must hold.")
+        return cls(**{k: float(v) for k, v in raw.items()})
+
+
+class Watcher:
+    """The watch stage (see the module docstring)."""
+
+    def __init__(self, config: Config, identifier: OnlineIdentifier) -> None:
+        self.config = config
+        self.ident = identifier
+        self.settings = s = WatchSettings.from_config(config)
+        self.limit = config.outputs.curvature.limit_per_m
+        self.dt = identifier.dt
+        self.period_n = max(1, int(round(s.period_s / self.dt)))
+        slow_s = identifier.settings.slow_period_s
+        evals = s.false_alarm_per_hours * 3600.0 / slow_s  # evaluations in the target interval
+        self.n_coef_stats = len(COEFS) * len(OUTS)
+        self.n_mode_stats = 2
+        # Bonferroni: each statistic's in-control ARL is the number of its evaluations in the
+        # target interval times the number of statistics (Siegmund's ARL, see cusum.py).
+        total = self.n_coef_stats + self.n_mode_stats
+        self.h = threshold_for_arl(evals * total, s.cusum_k)
+        self.base_n = max(5, int(round(s.baseline_s / slow_s)))
+        ref = identifier.reference
+        self.ref_mode = None
+        if ref is not None and ref.rank:
+            m = modal_parameters(ref.A, self.dt, C=ref.C, B=ref.B)
+            if np.any(m.oscillatory) and m.participation is not None:
+                osc = np.flatnonzero(m.oscillatory)
+                j = osc[np.argmax(m.participation[1, osc])]  # dominant in curvature
+                self.ref_mode = (float(m.frequency_hz[j]), float(m.damping[j]))
+        self.reset()
+
+    def reset(self) -> None:
+        s = self.settings
+        self.cusum_coef = Cusum(self.n_coef_stats, s.cusum_k, self.h)
+        self.cusum_mode = Cusum(self.n_mode_stats, s.cusum_k, self.h)
+        self.book = WarningBook(s.dwell_s)
+        self.margin = MarginForecaster(self.limit, s.margin_horizon_s, self.dt)
+        self.seen_seq = 0
+        self.since_watch = 0
+        self.last_z: dict[str, float] = {}
+        self.stale = {"statistic": 0.0, "threshold": s.stale_ratio}
+        self.ref_x = np.zeros(self.ident.reference.rank) if self.ident.reference is not None else None
+        self.ref_sq = np.zeros(2)
+        self.ref_n = 0
+        self.ref_base: np.ndarray | None = None
+        self.noise_base: np.ndarray | None = None
+        self.noise_acc: list[float] = []
+        self.noise_blocks = 0
+        self.sensors: dict[str, dict[str, str]] = {}
+        self.gauge_suspect = False
+        self.hold_bias: list[tuple[float, float, float]] = []  # (t, curvature bias, lift bias)
+        self.damp_hist: list[tuple[float, float]] = []  # (dynamic pressure, damping)
+        self.plan: tuple[float, float, np.ndarray] | None = None
+        self.q_recent = float("nan")
+        self.base: np.ndarray | None = None  # coefficient baseline (start of the run)
+        self.base_sd: np.ndarray | None = None
+        self.base_acc: list[np.ndarray] = []
+        self.base_offset: dict[str, float] = {}
+        self.mode_base: np.ndarray | None = None
+        self.mode_sd: np.ndarray | None = None
+        self.mode_acc: list[tuple[float, float]] = []
+        self.mode_label: int | None = None
+
+    @property
+    def model_id(self) -> str:
+        m = self.ident.in_service
+        return m["model_id"] if m else "none"
+
+    # ----------------------------------------------------------------------------------------
+    def update(self, block: ConditionedBlock) -> list[Output]:
+        out: list[Output] = []
+        lb = self.ident.last_block
+        if lb is None or lb.get("_seen"):
+            return out  # the identifier is still gathering this block
+        lb["_seen"] = True
+        q = block.dynamic_pressure
+        if q.size:
+            self.q_recent = float(np.nanmean(q))
+        t_end = float(lb["t"][-1])
+        self._track_model()
+        self.margin.update(lb["a"], lb["ad"], lb["add"], lb["dy"], lb["ok"])
+        self._reference_residual(lb)
+        self._sensor_health(block, lb)
+        if self.ident.candidate_seq != self.seen_seq:
+            self.seen_seq = self.ident.candidate_seq
+            out.extend(self._evaluate_window(t_end))
+        out.extend(self._margin_warnings(t_end))
+        self.since_watch += int(lb["a"].size)
+        if self.since_watch >= self.period_n:
+            self.since_watch = 0
+            out.append(self._watch_message(t_end))
+        return out
+
+    def _track_model(self) -> None:
+        ident = self.ident
+        m = ident.in_service
+        key = (m["model_id"], ident.rank) if m else ("none", ident.rank)
+        s2 = ident.last_window["s2"] if ident.last_window else np.full(2, 1e-6)
+        self.margin.set_model(key, ident.A, ident.B, ident.rls.theta, ident.alpha0 or 0.0,
+                              ident.y0 if ident.y0 is not None else np.zeros(2), s2)
+
+    def _reference_residual(self, lb: dict[str, Any]) -> None:
+        ref = self.ident.reference
+        if ref is None:
+            return
+        from wingwatch.daemon.identify.interpretable import simulate_states
+
+        X, self.ref_x = simulate_states(ref.A, ref.B[:, 0], lb["ad"], self.ref_x)
+        pred = (np.outer(lb["a"], ref.k_qs) + np.outer(lb["ad"], ref.k_rate)
+                + np.outer(lb["add"], ref.k_am) + X @ ref.C.T + ref.bias)
+        e = (lb["dy"] - pred)[lb["ok"]]
+        self.ref_sq += np.sum(e * e, axis=0)
+        self.ref_n += e.shape[0]
+        if e.shape[0] and abs(float(np.sqrt(np.mean(lb["ad"][lb["ok"]] ** 2)))) < math.radians(0.2):
+            # alpha holds: the residual biases tell a gauge zero drift from a structural change
+            self.hold_bias.append((float(lb["t"][-1]), float(e[:, 1].mean()), float(e[:, 0].mean())))
+            self.hold_bias = self.hold_bias[-600:]
+
+    def _sensor_health(self, block: ConditionedBlock, lb: dict[str, Any]) -> None:
+        names = self.config.conditioning_stream.channels
+        si = block.si
+        if si.shape[0] < 3:
+            return
+        noise = np.std(np.diff(si, axis=0), axis=0)  # sample-to-sample noise per channel
+        self.noise_blocks += 1
+        if self.noise_base is None:
+            self.noise_acc.append(noise)
+            if len(self.noise_acc) >= 200:  # a baseline from the first part of the run
+                self.noise_base = np.median(np.array(self.noise_acc), axis=0)
+                self.noise_acc = []
+            return
+        for j, name in enumerate(names):
+            if self.config.channels[name].quantity == "angle":
+                continue  # an encoder at a hold reads a constant: not a fault
+            base = self.noise_base[j]
+            state, detail = "ok", ""
+            if base > 0 and noise[j] == 0.0:
+                state, detail = "stuck", f"{name} reads a constant value"
+            elif base > 0 and noise[j] > self.settings.noise_ratio * base:
+                state, detail = "noisy", f"{name} noise {noise[j] / base:.1f}x its baseline"
+            self.sensors[name] = {"state": state, "detail": detail}
+
+    # ----------------------------------------------------------------------------------------
+    def _evaluate_window(self, t: float) -> list[Output]:
+        out: list[Output] = []
+        s = self.settings
+        ident = self.ident
+        ref = ident.reference
+        w = ident.last_window
+        # stale model: reference residual against its level at the start
+        if self.ref_n:
+            rms = np.sqrt(self.ref_sq / self.ref_n)
+            if self.ref_base is None:
+                self.ref_base = np.maximum(rms, 1e-9)
+            ratio = float(np.max(rms / self.ref_base))
+            self.stale = {"statistic": ratio, "threshold": s.stale_ratio}
+            self.ref_sq[:] = 0.0
+            self.ref_n = 0
+            level = "caution" if ratio > s.stale_ratio else None
+            out += self.book.report("stale_model:reference", "stale_model", "prediction_rms_ratio",
+                                    level, ratio, s.stale_ratio, t, self.model_id,
+                                    f"The controller's model no longer fits: its prediction error "
+                                    f"is {ratio:.1f}x its level at the start (advisory).")
+        # gauge zero drift: curvature residual bias moving while alpha holds and lift fits
+        self.gauge_suspect = False
+        if len(self.hold_bias) >= 20:
+            tb = np.array(self.hold_bias[-200:])
+            span = tb[-1, 0] - tb[0, 0]
+            if span > 5.0:
+                slope_k = np.polyfit(tb[:, 0], tb[:, 1], 1)[0] * span
+                slope_l = np.polyfit(tb[:, 0], tb[:, 2], 1)[0] * span
+                scale_k = max(abs(self.ident.y0[1]) if self.ident.y0 is not None else 0.0, 1e-3)
+                scale_l = max(abs(self.ident.y0[0]) if self.ident.y0 is not None else 0.0, 1e-3)
+                drift_k = abs(slope_k) / scale_k
+                if drift_k > 0.03 and abs(slope_l) / scale_l < 0.01:
+                    self.gauge_suspect = True
+                    self.sensors["strain gauge"] = {
+                        "state": "zero_drift",
+                        "detail": f"curvature residual moved {100 * drift_k:.1f} % while alpha held"}
+        out += self.book.report("sensor_health:zero_drift", "sensor_health", "curvature_gauge_zero",
+                                "advisory" if self.gauge_suspect else None,
+                                float(self.gauge_suspect), 1.0, t, self.model_id,
+                                "The curvature gauge's zero seems to drift while alpha holds: a "
+                                "sensor fault, not a structural change; check the strain gauge "
+                                "(advisory).")
+        for name, st in self.sensors.items():
+            if name == "strain gauge":
+                continue
+            bad = st["state"] in ("stuck", "noisy")
+            out += self.book.report(f"sensor_health:{name}", "sensor_health", name,
+                                    "advisory" if bad else None, 1.0 if bad else 0.0, 1.0, t,
+                                    self.model_id,
+                                    f"Sensor {st['detail'] or name}; check the channel (advisory).")
+        s_coefs = ("quasi_steady", "rate", "added_mass") if s.watch_rate_and_added_mass else (
+            "quasi_steady",)
+        # coefficient drift: window estimates against the reference as the online estimator sees
+        # it at the start of the run (the baseline), standardised by their observed scatter
+        if w is not None and ref is not None and self.ident.accepted > 0:
+            th = w["interpretable"][:3]  # rows: quasi-steady, rate, added mass
+            if self.base is None:
+                self.base_acc.append(th.copy())
+                if len(self.base_acc) >= self.base_n:
+                    arr = np.array(self.base_acc)
+                    self.base = arr.mean(axis=0)
+                    self.base_sd = arr.std(axis=0, ddof=1)
+                    self.base_acc = []
+                    for i, (key, row) in enumerate(COEFS):
+                        for j, o in enumerate(OUTS):
+                            r0 = ref.coefficient(key)[j]
+                            self.base_offset[f"{key}.{o}"] = (float(self.base[row, j] / r0 - 1)
+                                                              if r0 else 0.0)
+            else:
+                z = np.zeros(self.n_coef_stats)
+                for i, (key, row) in enumerate(COEFS):
+                    for j, o in enumerate(OUTS):
+                        b0 = self.base[row, j]
+                        den = math.sqrt(self.base_sd[row, j] ** 2 + (s.coefficient_tolerance * b0) ** 2)
+                        zz = (th[row, j] - b0) / den if den > 0 else 0.0
+                        if (j == 1 and self.gauge_suspect) or key not in s_coefs:
+                            zz = float("nan")  # sensor fault / not watched: no structural verdict
+                        z[i * 2 + j] = zz
+                        self.last_z[f"{key}.{o}"] = float(zz)
+                alarms = self.cusum_coef.update(z)
+                stat = self.cusum_coef.statistic
+                for i, (key, row) in enumerate(COEFS):
+                    for j, o in enumerate(OUTS):
+                        k = i * 2 + j
+                        level = "caution" if alarms[k] else None
+                        b0 = self.base[row, j]
+                        pct = 100 * (th[row, j] / b0 - 1) if b0 else 0.0
+                        out += self.book.report(
+                            f"coefficient_drift:{key}.{o}", "coefficient_drift", f"{key}.{o}",
+                            level, float(stat[k]), self.h, t, self.model_id,
+                            f"The {key.replace('_', '-')} {o} coefficient has moved {pct:+.1f} % "
+                            "from its value at the start of the run, beyond its tolerance "
+                            "(advisory).")
+        # mode drift and damping trend
+        out += self._modes(t)
+        return out
+
+    def _modes(self, t: float) -> list[Output]:
+        out: list[Output] = []
+        s = self.settings
+        m = self.ident.in_service
+        if not m or self.ref_mode is None or not m.get("modes"):
+            return out
+        f0, z0 = self.ref_mode
+        # Only lightly damped modes with a stable track make a modal verdict: a heavily damped
+        # pole moves about from one realisation to the next without any physical change.
+        modes = [x for x in m["modes"] if abs(x["freq_hz"] - f0) < 0.5 * f0 and x["damping"] < 0.3]
+        if self.mode_label is not None:
+            modes = [x for x in modes if x["id"] == self.mode_label]
+        if not modes:
+            if self.mode_base is None:
+                self.mode_acc = []  # the track broke during the baseline: start it again
+                self.mode_label = None
+            return out
+        near = min(modes, key=lambda x: abs(x["freq_hz"] - f0))
+        self.mode_label = near["id"]
+        # Like the coefficients: against the mode as the online estimator sees it at the start
+        # of the run, standardised by its observed scatter and a relative tolerance.
+        if self.mode_base is None:
+            self.mode_acc.append((near["freq_hz"], near["damping"]))
+            if len(self.mode_acc) >= self.base_n:
+                arr = np.array(self.mode_acc)
+                self.mode_base = arr.mean(axis=0)
+                self.mode_sd = arr.std(axis=0, ddof=1)
+                self.mode_acc = []
+            return out
+        fb, zb = self.mode_base
+        zf = (near["freq_hz"] - fb) / math.hypot(self.mode_sd[0], s.mode_freq_tolerance * fb)
+        zd = (near["damping"] - zb) / math.hypot(self.mode_sd[1],
+                                                  s.mode_damping_tolerance * max(zb, 1e-3))
+        if self.gauge_suspect:
+            zf = zd = float("nan")
+        self.last_z["mode.freq_hz"] = float(zf)
+        self.last_z["mode.damping"] = float(zd)
+        alarms = self.cusum_mode.update(np.array([zf, zd]))
+        stat = self.cusum_mode.statistic
+        for k, (q, val) in enumerate((("freq_hz", near["freq_hz"]), ("damping", near["damping"]))):
+            ref_v = fb if q == "freq_hz" else zb
+            out += self.book.report(f"mode_drift:{q}", "mode_drift", f"mode{near['id']}.{q}",
+                                    "caution" if alarms[k] else None, float(stat[k]), self.h, t,
+                                    self.model_id,
+                                    f"Mode {near['id']} {q.replace('_hz', '')} is {val:.3g} against "
+                                    f"{ref_v:.3g} at the start of the run (advisory).")
+        if math.isfinite(self.q_recent):
+            self.damp_hist.append((self.q_recent, near["damping"]))
+            self.damp_hist = self.damp_hist[-30:]
+        level = None
+        q_zero = float("nan")
+        if len(self.damp_hist) >= 8:
+            arr = np.array(self.damp_hist)
+            if np.ptp(arr[:, 0]) > 0.05 * max(np.mean(arr[:, 0]), 1e-9):
+                slope, icpt = np.polyfit(arr[:, 0], arr[:, 1], 1)
+                if slope < 0:
+                    q_zero = -icpt / slope  # dynamic pressure of zero damping (extrapolated)
+                    if q_zero < s.damping_q_margin * self.q_recent:
+                        level = "advisory"
+        out += self.book.report("damping_trend:mode", "damping_trend", "damping_zero_q_pa", level,
+                                q_zero if math.isfinite(q_zero) else 0.0,
+                                s.damping_q_margin * self.q_recent if math.isfinite(self.q_recent) else 0.0,
+                                t, self.model_id,
+                                f"Mode damping falls as dynamic pressure rises; extrapolated zero "
+                                f"damping at {q_zero:.0f} Pa (advisory).")
+        return out
+
+    def _margin_warnings(self, t: float) -> list[Output]:
+        s = self.settings
+        self.last_margin = fc = self.margin.forecast(self.plan, t)
+        pm = fc["predicted_min"]
+        level = None
+        if fc["now"] <= 0.0:
+            level = "limit"
+        elif pm < s.margin_caution or fc["time_to_limit_s"] is not None:
+            level = "caution"
+        elif pm < s.margin_advisory:
+            level = "advisory"
+        ttl = fc["time_to_limit_s"]
+        msg = (f"Curvature margin {100 * fc['now']:.0f} % now, {100 * pm:.0f} % predicted within "
+               f"{s.margin_horizon_s:.1f} s" + (f"; limit reached in about {ttl:.1f} s" if ttl else "")
+               + " (advisory).")
+        return self.book.report("curvature_margin:root", "curvature_margin", "curvature_margin",
+                                level, pm, s.margin_advisory, t, self.model_id, msg)
+
+    def _watch_message(self, t: float) -> Output:
+        fc = getattr(self, "last_margin", None) or self.margin.forecast(self.plan, t)
+        drift = {k: {"z": v, "cusum": None, "threshold": self.h} for k, v in self.last_z.items()}
+        stat_c = self.cusum_coef.statistic
+        for i, (key, _) in enumerate(COEFS):
+            for j, o in enumerate(OUTS):
+                name = f"{key}.{o}"
+                if name in drift:
+                    drift[name]["cusum"] = float(stat_c[i * 2 + j])
+        stat_m = self.cusum_mode.statistic
+        for k, name in enumerate(("mode.freq_hz", "mode.damping")):
+            if name in drift:
+                drift[name]["cusum"] = float(stat_m[k])
+        return Output("watch", {
+            "t": t, "model_id": self.model_id, "margin": fc, "drift": drift,
+            "stale": dict(self.stale), "sensors": dict(self.sensors),
+            "baseline_offset": dict(self.base_offset),
+        })
+
+    # ----------------------------------------------------------------------------------------
+    def state_dict(self) -> dict[str, Any]:
+        return {
+            "cusum_coef": self.cusum_coef.state_dict(), "cusum_mode": self.cusum_mode.state_dict(),
+            "book": self.book.state_dict(), "margin": self.margin.state_dict(),
+            "seen_seq": self.seen_seq, "since_watch": self.since_watch,
+            "last_z": dict(self.last_z), "stale": dict(self.stale),
+            "ref_x": None if self.ref_x is None else self.ref_x.copy(),
+            "ref_sq": self.ref_sq.copy(), "ref_n": self.ref_n,
+            "ref_base": None if self.ref_base is None else self.ref_base.copy(),
+            "noise_base": None if self.noise_base is None else self.noise_base.copy(),
+            "noise_acc": [a.copy() for a in self.noise_acc], "noise_blocks": self.noise_blocks,
+            "sensors": {k: dict(v) for k, v in self.sensors.items()},
+            "gauge_suspect": self.gauge_suspect, "hold_bias": list(self.hold_bias),
+            "damp_hist": list(self.damp_hist), "q_recent": self.q_recent,
+            "base": None if self.base is None else self.base.copy(),
+            "base_sd": None if self.base_sd is None else self.base_sd.copy(),
+            "base_acc": [a.copy() for a in self.base_acc], "base_offset": dict(self.base_offset),
+            "mode_base": None if self.mode_base is None else self.mode_base.copy(),
+            "mode_sd": None if self.mode_sd is None else self.mode_sd.copy(),
+            "mode_acc": list(self.mode_acc), "mode_label": self.mode_label,
+        }
+
+    def load_state_dict(self, st: dict[str, Any]) -> None:
+        self.reset()
+        self.cusum_coef.load_state_dict(st["cusum_coef"])
+        self.cusum_mode.load_state_dict(st["cusum_mode"])
+        self.book.load_state_dict(st["book"])
+        self.margin.load_state_dict(st["margin"])
+        self.seen_seq = int(st["seen_seq"])
+        self.since_watch = int(st["since_watch"])
+        self.last_z = dict(st["last_z"])
+        self.stale = dict(st["stale"])
+        self.ref_x = None if st["ref_x"] is None else np.array(st["ref_x"], dtype=float)
+        self.ref_sq = np.array(st["ref_sq"], dtype=float)
+        self.ref_n = int(st["ref_n"])
+        self.ref_base = None if st["ref_base"] is None else np.array(st["ref_base"], dtype=float)
+        self.noise_base = None if st["noise_base"] is None else np.array(st["noise_base"], dtype=float)
+        self.noise_acc = [np.array(a, dtype=float) for a in st["noise_acc"]]
+        self.noise_blocks = int(st["noise_blocks"])
+        self.sensors = {k: dict(v) for k, v in st["sensors"].items()}
+        self.gauge_suspect = bool(st["gauge_suspect"])
+        self.hold_bias = [tuple(x) for x in st["hold_bias"]]
+        self.damp_hist = [tuple(x) for x in st["damp_hist"]]
+        self.q_recent = float(st["q_recent"])
+        self.base = None if st["base"] is None else np.array(st["base"], dtype=float)
+        self.base_sd = None if st["base_sd"] is None else np.array(st["base_sd"], dtype=float)
+        self.base_acc = [np.array(a, dtype=float) for a in st["base_acc"]]
+        self.base_offset = dict(st["base_offset"])
+        self.mode_base = None if st["mode_base"] is None else np.array(st["mode_base"], dtype=float)
+        self.mode_sd = None if st["mode_sd"] is None else np.array(st["mode_sd"], dtype=float)
+        self.mode_acc = [tuple(x) for x in st["mode_acc"]]
+        self.mode_label = st["mode_label"]
