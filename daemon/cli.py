@@ -52,7 +52,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
         sys.stdout.write(to_toml(cfg))
         return 0
     daemon = Daemon(cfg, record=not args.no_record, record_dir=args.record_dir,
-                    insecure=args.insecure)
+                    insecure=args.insecure, reference=args.model)
     try:
         def _stop(signum: int, frame: Any) -> None:
             daemon.stop()
@@ -163,7 +163,7 @@ def replay_summary(result: Any, compare: Any = None) -> dict[str, Any]:
         "warnings": [{"t": w.get("t"), "level": w.get("level"), "kind": w.get("warning_kind"),
                       "event": w.get("event")} for w in warnings],
         "events": sum(1 for o in result.outputs if o.kind not in (KIND_MODEL, KIND_WARNING)),
-        "final": result.final if hasattr(result, "final") else {},
+        "final": result.final,
         "output_digest": result.output_digest,
         "counters": result.counters,
         "damage": result.damage,
@@ -356,6 +356,25 @@ def _calibration_plot(result: Any, rec: Any, path: str) -> str | None:
 
 
 # --------------------------------------------------------------------------------------------
+# demo
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from wingwatch.daemon.demo import format_summary, run_demo, summary_json
+
+    def say(msg: str) -> None:
+        err_console.print(msg, markup=False)
+
+    res = run_demo(duration_s=args.duration, headless=args.headless, start_s=args.start_s,
+                   speed=args.speed, config_path=args.config, say=say)
+    if args.json:
+        sys.stdout.write(summary_json(res) + "\n")
+    else:
+        sys.stdout.write(format_summary(res) + "\n")
+    return 0
+
+
+# --------------------------------------------------------------------------------------------
 # keys
 
 
@@ -424,6 +443,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--print-config", action="store_true", help="print the resolved configuration "
                    "as TOML and exit")
     p.add_argument("--duration", type=float, metavar="S", help="stop after S seconds of wall time")
+    p.add_argument("--model", metavar="FILE", help="reference model file from 'wingwatch calibrate' "
+                   "(default: identify.reference_model; none: run cold)")
     p.add_argument("--record-dir", metavar="DIR", help="record into DIR instead of recorder.directory")
     p.add_argument("--no-record", action="store_true", help="do not write a replay log")
     p.add_argument("--insecure", action="store_true", help="allow binding beyond loopback "
@@ -470,6 +491,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=_cmd_calibrate)
 
+    p = sub.add_parser("demo", help="the whole system on the virtual rig (rig, daemon, monitor)",
+                       description="Run the virtual rig's campaign into the daemon with the terminal "
+                                   "monitor, all on loopback. " + ADVISORY_LINE)
+    p.add_argument("--duration", type=float, metavar="S", help="stop after S seconds and print a "
+                   "summary")
+    p.add_argument("--headless", action="store_true", help="no monitor (for scripts and CI)")
+    p.add_argument("--from", dest="start_s", type=float, metavar="S", help="join the campaign at "
+                   "source time S (default: 20 s before its first scripted event)")
+    p.add_argument("--speed", type=float, default=1.0, metavar="X", help="pace the rig at X times "
+                   "real time (default 1)")
+    p.add_argument("--config", metavar="FILE", help="configuration laid over the shipped default")
+    p.add_argument("--json", action="store_true", help="print the summary as one JSON object")
+    p.set_defaults(func=_cmd_demo)
+
     p = sub.add_parser("keys", help="create CurveZMQ key pairs for the daemon and its clients",
                        description="Create CurveZMQ key pairs: one for the daemon, one per client, "
                                    "and the allow-list folder of client public keys.")
@@ -489,7 +524,6 @@ def build_parser() -> argparse.ArgumentParser:
     monitor_cli.configure_parser(p)
     p.set_defaults(func=monitor_cli.run)
     for name, text, issue in (
-        ("demo", "the whole system on the virtual rig", "the replay and demo issue"),
     ):
         p = sub.add_parser(name, help=f"{text} (not yet available)")
         p.set_defaults(func=_not_yet(name, issue))

@@ -549,9 +549,11 @@ class OnlineIdentifier:
             return (f"the quasi-steady lift coefficient {th[0, 0]:.3f} per rad is outside the "
                     f"physical bounds [{lo}, {hi}]")
         if self.reference is not None:
-            ref = self.reference.k_qs[1]
-            if ref != 0 and np.sign(th[0, 1]) != np.sign(ref):
-                return "the quasi-steady curvature coefficient changed sign against the reference"
+            for j, name in enumerate(("lift", "curvature")):
+                ref = self.reference.k_qs[j]
+                if ref != 0 and not 0.5 <= th[0, j] / ref <= 2.0:
+                    return (f"the quasi-steady {name} coefficient {th[0, j]:.3g} is outside half to "
+                            f"twice the reference's {ref:.3g}: not a physical change of this article")
         return ""
 
     # ----------------------------------------------------------------------------------------

@@ -39,7 +39,8 @@ import numpy as np
 
 from wingwatch.daemon.errors import ModelFileError
 
-__all__ = ["ReferenceModel", "save_model", "load_model", "MODEL_FORMAT", "MODEL_VERSION",
+__all__ = ["ReferenceModel", "save_model", "load_model", "model_from_dict", "MODEL_FORMAT",
+           "MODEL_VERSION",
            "COEFFICIENT_KEYS", "OUTPUT_KEYS"]
 
 MODEL_FORMAT = "wingwatch-model"
@@ -166,6 +167,11 @@ def load_model(path: str | Path) -> ReferenceModel:
     except json.JSONDecodeError as exc:
         raise ModelFileError(f"{where}: not a complete JSON document (truncated or damaged at "
                              f"line {exc.lineno}).") from None
+    return model_from_dict(d, where)
+
+
+def model_from_dict(d: Any, where: str = "<model>") -> ReferenceModel:
+    """Validate a parsed model document (as in a file, or embedded in a log header)."""
     if not isinstance(d, dict) or d.get("format") != MODEL_FORMAT:
         raise ModelFileError(f"{where}: not a wingwatch model file (field 'format').")
     if d.get("version") != MODEL_VERSION:

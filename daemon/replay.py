@@ -37,6 +37,7 @@ __all__ = [
     "compare_outputs",
     "replay_log",
     "config_of_log",
+    "final_summary",
 ]
 
 #: topic bytes -> the log record kind it is recorded as
@@ -74,6 +75,7 @@ class ReplayResult:
     counters: dict[str, Any] = field(default_factory=dict)
     damage: list[dict[str, Any]] = field(default_factory=list)
     session: Session | None = None
+    final: dict[str, Any] = field(default_factory=dict)
 
     @property
     def realtime_factor(self) -> float:
@@ -154,6 +156,36 @@ def compare_outputs(recorded: list[OutputRecord], replayed: list[OutputRecord]) 
     return None
 
 
+def _default_factory(header: dict[str, Any]) -> Callable[[Config], Pipeline]:
+    """The live daemon's pipeline for a daemon-recorded log (with the embedded reference model);
+    the bare ingest pipeline for logs that recorded only frames (the rig's --out)."""
+    source = header.get("source")
+    if source not in ("daemon", "replay"):
+        return Pipeline
+    from wingwatch.daemon.modelfile import model_from_dict
+    from wingwatch.daemon.service import make_pipeline
+
+    ref = header.get("reference_model")
+    reference = model_from_dict(ref, "the log header's reference model") if ref else None
+    return lambda cfg: make_pipeline(cfg, reference)
+
+
+def final_summary(pipeline: Pipeline) -> dict[str, Any]:
+    """The model in service at the end, in the replay summary's ``final`` layout."""
+    for st in pipeline.stages:
+        m = getattr(st, "in_service", None)
+        if m:
+            c = m.get("coefficients", {})
+            return {
+                "model_id": m.get("model_id"), "t": m.get("t"), "rank": m.get("rank"),
+                "quasi_steady": c.get("quasi_steady"), "rate": c.get("rate"),
+                "added_mass": c.get("added_mass"),
+                "modes": [{"freq_hz": x["freq_hz"], "damping": x["damping"]}
+                          for x in m.get("modes", [])],
+            }
+    return {}
+
+
 def _records_in_window(reader: rl.LogReader, t_from: float | None, t_to: float | None
                        ) -> Iterator[rl.Record]:
     for rec in reader:
@@ -203,7 +235,9 @@ def replay_log(
     cfg = config or config_of_log(path)
     reader = rl.LogReader.open(path)
     total = sum(p.stat().st_size for p in reader.paths)
-    pipeline = (pipeline_factory or Pipeline)(cfg)
+    if pipeline_factory is None:
+        pipeline_factory = _default_factory(reader.header)
+    pipeline = pipeline_factory(cfg)
     result = ReplayResult()
     writer = None
     if record_to is not None:
@@ -250,4 +284,5 @@ def replay_log(
         result.source_s = p.last_sample_t - p.first_sample_t
     result.damage = [{"kind": d.kind, "segment": d.segment, "offset": d.offset, "reason": d.reason}
                      for d in reader.damage]
+    result.final = final_summary(p)
     return result

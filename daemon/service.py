@@ -72,9 +72,16 @@ def check_binds(config: Config, insecure: bool) -> None:
 
 
 def make_recorder(config: Config, *, directory: str | Path | None = None, path: str | Path | None = None,
-                  source: str = "daemon", start_unix: float | None = None) -> LogWriter:
-    """A LogWriter set up from the configuration's [recorder] table."""
+                  source: str = "daemon", start_unix: float | None = None,
+                  reference: Any = None) -> LogWriter:
+    """A LogWriter set up from the configuration's [recorder] table.
+
+    The reference model in use (if any) is embedded in the header, so a replay starts from
+    exactly the same model even when the model file has moved or changed.
+    """
     header = {"source": source, "config": config.as_dict(), "config_source": config.source}
+    if reference is not None:
+        header["reference_model"] = reference.as_dict()
     rec = config.recorder
     if path is not None:
         return LogWriter(path=path, header=header, fsync_interval_s=rec.fsync_interval_s,
@@ -137,8 +144,18 @@ class Daemon:
         self._own_ctx = context is None
         self.ctx = context or zmq.Context()
         self.stop_event = threading.Event()
+        if isinstance(reference, (str, Path)):
+            from wingwatch.daemon.modelfile import load_model
+
+            reference = load_model(reference)
+        if reference is None and identify and config.identify.get("reference_model"):
+            from wingwatch.daemon.modelfile import load_model
+
+            reference = load_model(config.identify["reference_model"])
+        self.reference = reference
         self.recorder = (
-            make_recorder(config, directory=record_dir) if record and config.recorder.enabled else None
+            make_recorder(config, directory=record_dir, reference=reference)
+            if record and config.recorder.enabled else None
         )
         self.sub = self.ctx.socket(zmq.SUB)
         self.pub = self.ctx.socket(zmq.PUB)

@@ -192,6 +192,7 @@ class Watcher:
         self.mode_sd: np.ndarray | None = None
         self.mode_acc: list[tuple[float, float]] = []
         self.mode_label: int | None = None
+        self.margin_samples = 0
 
     @property
     def model_id(self) -> str:
@@ -440,6 +441,9 @@ class Watcher:
     def _margin_warnings(self, t: float) -> list[Output]:
         s = self.settings
         self.last_margin = fc = self.margin.forecast(self.plan, t)
+        self.margin_samples += int(self.ident.last_block["a"].size)
+        if self.margin_samples * self.dt < 2.0:
+            return []  # the filter state is still settling from its start
         pm = fc["predicted_min"]
         level = None
         if fc["now"] <= 0.0:
@@ -495,6 +499,7 @@ class Watcher:
             "mode_base": None if self.mode_base is None else self.mode_base.copy(),
             "mode_sd": None if self.mode_sd is None else self.mode_sd.copy(),
             "mode_acc": list(self.mode_acc), "mode_label": self.mode_label,
+            "margin_samples": self.margin_samples,
         }
 
     def load_state_dict(self, st: dict[str, Any]) -> None:
@@ -527,3 +532,4 @@ class Watcher:
         self.mode_sd = None if st["mode_sd"] is None else np.array(st["mode_sd"], dtype=float)
         self.mode_acc = [tuple(x) for x in st["mode_acc"]]
         self.mode_label = st["mode_label"]
+        self.margin_samples = int(st["margin_samples"])
