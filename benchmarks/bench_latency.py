@@ -97,12 +97,12 @@ class LiveDaemon:
         err = ""
         if self.proc.poll() is None:
             self.proc.send_signal(signal.SIGINT)
-            try:
-                _, err_b = self.proc.communicate(timeout=15)
-                err = err_b.decode(errors="replace")
-            except subprocess.TimeoutExpired:
-                self.proc.kill()
-                self.proc.communicate(timeout=5)
+        try:
+            _, err_b = self.proc.communicate(timeout=15)
+            err = (err_b or b"").decode(errors="replace")
+        except (subprocess.TimeoutExpired, ValueError):
+            self.proc.kill()
+            self.proc.communicate(timeout=5)
         shutil.rmtree(self.dir, ignore_errors=True)
         return err[-2000:]
 
@@ -142,7 +142,7 @@ def _session(rate_hz: float, seconds: float, *, probe: bool, warmup_s: float) ->
             if sub.poll(200):
                 got_status = sub.recv_multipart()[0] == b"ww.status"
         if not (ready and got_status):
-            raise RuntimeError(f"the daemon did not come up: {d.stop()}")
+            raise RuntimeError(f"the daemon did not come up (exit {d.proc.poll()}): {d.stop()}")
         total = warmup_s + seconds
         start = time.perf_counter()
         k = 0
@@ -201,6 +201,16 @@ def _session(rate_hz: float, seconds: float, *, probe: bool, warmup_s: float) ->
             "accepted": int(counters.get("accepted", 0)), "rejected": int(counters.get("rejected", 0))}
 
 
+def _session_retry(*args, **kw) -> dict:
+    """One retry with fresh ports when the daemon does not come up (a port taken meanwhile)."""
+    try:
+        return _session(*args, **kw)
+    except RuntimeError as exc:
+        if "did not come up" not in str(exc):
+            raise
+        return _session(*args, **kw)
+
+
 def _lag_verdict(status: list[tuple[float, float, int]], total_s: float) -> tuple[float, float, bool]:
     """(lag growth over the second half in s/s, final lag s, bounded?)"""
     pts = [(t, lag) for t, lag, _ in status if t >= total_s / 2]
@@ -215,7 +225,7 @@ def _lag_verdict(status: list[tuple[float, float, int]], total_s: float) -> tupl
 def run(quick: bool = False) -> dict:
     lat_s = 4.0 if quick else 60.0
     warm = 2.0 if quick else 5.0
-    r = _session(1000.0, lat_s, probe=True, warmup_s=warm)
+    r = _session_retry(1000.0, lat_s, probe=True, warmup_s=warm)
     lat = np.array(r["latencies"]) * 1e3
     if lat.size == 0:
         raise RuntimeError(f"no latency sample was measured; daemon said: {r['stderr']}")
@@ -227,7 +237,7 @@ def run(quick: bool = False) -> dict:
     rate_rows = []
     best = 0.0
     for rate in rates:
-        s = _session(rate, step_s, probe=False, warmup_s=3.0)
+        s = _session_retry(rate, step_s, probe=False, warmup_s=3.0)
         slope, final, ok = _lag_verdict(s["status"], step_s + 3.0)
         max_lag = max((lag for _, lag, _ in s["status"]), default=float("nan"))
         rate_rows.append([f"{rate / 1000:g} kHz", int(rate * FRAME_S), step_s, final, max_lag, slope,
