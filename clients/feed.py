@@ -222,8 +222,9 @@ class _Feed:
         last = self._last_pub_seq.get(kind)
         if last is not None and seq > last + 1:
             self.missed += seq - last - 1
-        if last is None or seq > last:
-            self._last_pub_seq[kind] = seq
+        # A number at or below the last one seen is a new publisher (the daemon restarted and
+        # numbers from 0 again): it becomes the baseline, so later drops are counted at once.
+        self._last_pub_seq[kind] = seq
 
     def _on_message(self, kind: str, m: dict[str, Any], now: float) -> None:
         self._count_missed(kind, m)

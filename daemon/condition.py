@@ -21,8 +21,9 @@ Examples
 >>> from wingwatch.daemon.codec import SensorFrame
 >>> cfg = load_config()
 >>> cm = ChannelMap(cfg)
->>> raw = np.array([[2.0, 0.9, 45.0, 500.0, 100.0]])   # deg, N, Pa, microstrain, microstrain
+>>> raw = np.array([[2.0, 0.915, 45.0, 300.0, 100.0]])  # deg, N, Pa, microstrain, microstrain
 >>> b = cm.apply(SensorFrame("rig", 0, 0.0, 1000.0, cfg.streams["rig"].channels, raw))
+>>> # default map: balance tare -0.015 N, S = 0.03 m^2, t = 0.6 mm
 >>> round(float(b.alpha[0]), 6), round(float(b.lift[0]), 6), round(float(b.curvature[0]), 6)
 (0.034907, 0.666667, 1.0)
 """

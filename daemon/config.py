@@ -377,8 +377,13 @@ def config_from_dict(raw: dict[str, Any], source: str = "<dict>") -> Config:
     lim = ck.table(raw, "limits")
     ck.no_unknown(lim, "limits.", {"max_payload_bytes", "max_channels", "max_frame_samples",
                                    "max_burst_log"})
+    max_payload = ck.integer(lim, "limits.", "max_payload_bytes", minimum=64)
+    if max_payload > 16 << 20:
+        # the transport cap is 16x this, and a record must fit the log format's 256 MiB body
+        raise ck.fail("limits.max_payload_bytes", f"must be at most {16 << 20} (16 MiB), got "
+                                                  f"{max_payload}")
     limits = Limits(
-        max_payload_bytes=ck.integer(lim, "limits.", "max_payload_bytes", minimum=64),
+        max_payload_bytes=max_payload,
         max_channels=ck.integer(lim, "limits.", "max_channels", minimum=1),
         max_frame_samples=ck.integer(lim, "limits.", "max_frame_samples", minimum=1),
         max_burst_log=ck.integer(lim, "limits.", "max_burst_log", minimum=1),

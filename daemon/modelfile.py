@@ -192,13 +192,33 @@ def model_from_dict(d: Any, where: str = "<model>") -> ReferenceModel:
     coef = _pairs(d, "coefficients", where)
     sd = _pairs(d, "uncertainty", where)
     op = d.get("operating_point", {})
-    if not isinstance(op, dict) or not all(
-            isinstance(op.get(k), (int, float)) for k in ("alpha_rad", "lift", "curvature")):
-        raise ModelFileError(f"{where}: field 'operating_point' needs alpha_rad, lift and curvature.")
+
+    def _finite(v: Any) -> bool:
+        return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+
+    if not isinstance(op, dict) or not all(_finite(op.get(k)) for k in ("alpha_rad", "lift", "curvature")):
+        raise ModelFileError(f"{where}: field 'operating_point' needs finite alpha_rad, lift and "
+                             "curvature.")
+    if d.get("input", "alpha_dot") != "alpha_dot":
+        raise ModelFileError(f"{where}: field 'input' must be 'alpha_dot' (the transient's input).")
+    if d.get("outputs", list(OUTPUT_KEYS)) != list(OUTPUT_KEYS):
+        raise ModelFileError(f"{where}: field 'outputs' must be {list(OUTPUT_KEYS)}.")
     known = {"format", "version", "dt", "rank", "input", "outputs", "A", "B", "C", "coefficients",
              "uncertainty", "units", "operating_point", "hankel_sv", "errors_by_rank"}
+    extras = {"point_read", "differentiator", "provenance"}
+    for k in d:
+        if k not in known and k not in extras:
+            raise ModelFileError(f"{where}: field '{k}' is not part of model file version "
+                                 f"{MODEL_VERSION}.")
+    try:
+        hsv = np.array(d.get("hankel_sv", []), dtype=float).reshape(-1)
+    except (TypeError, ValueError):
+        raise ModelFileError(f"{where}: field 'hankel_sv' must be a list of numbers.") from None
+    ebr = d.get("errors_by_rank") or {}
+    if not isinstance(ebr, dict):
+        raise ModelFileError(f"{where}: field 'errors_by_rank' must be a map of rank to errors.")
     errors = {}
-    for r, e in (d.get("errors_by_rank") or {}).items():
+    for r, e in ebr.items():
         try:
             errors[int(r)] = {k: float(v) for k, v in e.items()}
         except (TypeError, ValueError, AttributeError):
@@ -208,7 +228,7 @@ def model_from_dict(d: Any, where: str = "<model>") -> ReferenceModel:
         k_qs=coef["quasi_steady"], k_rate=coef["rate"], k_am=coef["added_mass"],
         bias=coef["bias"], sd=sd,
         operating_point={k: float(op[k]) for k in ("alpha_rad", "lift", "curvature")},
-        hankel_sv=np.array(d.get("hankel_sv", []), dtype=float),
+        hankel_sv=hsv,
         errors_by_rank=errors,
-        extra={k: v for k, v in d.items() if k not in known},
+        extra={k: v for k, v in d.items() if k in extras},
     )

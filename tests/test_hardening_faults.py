@@ -358,9 +358,6 @@ def test_hung_and_vanished_subscribers_then_a_rebound_publish_socket(tmp_path, z
             gone.close(linger=0)
 
 
-@pytest.mark.xfail(strict=True, reason="clients/feed.py _count_missed ignores a pub_seq that goes "
-                   "back (a restarted daemon numbers from 0 again), so drops after a daemon restart "
-                   "are not counted until pub_seq passes the old daemon's last number")
 def test_feed_counts_drops_after_the_daemon_restarts(zctx):
     port = free_port()
     xpub = zctx.socket(zmq.XPUB)

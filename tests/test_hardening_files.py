@@ -78,9 +78,6 @@ def test_refusal_from_a_real_process_has_no_traceback(tmp_path):
     assert r.stdout == ""
 
 
-@pytest.mark.xfail(strict=True, reason="config.py puts no upper bound on limits.max_payload_bytes: "
-                   "the transport cap (16x) can then pass replaylog.MAX_RECORD_BODY (256 MiB), so "
-                   "an accepted-size message cannot be recorded")
 def test_payload_limit_beyond_what_the_log_can_hold_is_refused(tmp_path):
     with pytest.raises(ConfigError, match="limits.max_payload_bytes"):
         load_config(write_config(tmp_path, "[limits]\nmax_payload_bytes = 1073741824\n"))
@@ -191,9 +188,8 @@ BAD_MODELS_NOT_REFUSED = {
 
 
 @pytest.mark.parametrize("name", [
-    pytest.param(k, marks=pytest.mark.xfail(strict=True, reason=v[2]))
-    for k, v in sorted(BAD_MODELS_NOT_REFUSED.items())])
-def test_model_file_faults_load_model_does_not_refuse_yet(name, tmp_path):
+    pytest.param(k) for k, v in sorted(BAD_MODELS_NOT_REFUSED.items())])
+def test_model_file_faults_now_refused(name, tmp_path):
     d, field, _ = BAD_MODELS_NOT_REFUSED[name]
     p = _write(tmp_path, d)
     with pytest.raises(ModelFileError) as exc:
