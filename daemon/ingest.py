@@ -71,6 +71,7 @@ class IngestVerdict:
     gap_frames: int = 0  # frames missing just before this one (sequence gap)
     time_gap_s: float = 0.0  # source time missing just before this one
     restart: bool = False  # the source restarted its sequence before this frame
+    plan: bool = False  # an accepted controller plan, not a sensor frame
 
     @property
     def outcome(self) -> str:

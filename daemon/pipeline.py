@@ -34,6 +34,9 @@ from wingwatch.daemon.version import __version__
 
 __all__ = ["Output", "Stage", "Pipeline", "Session", "LastValues", "ADVISORY", "OUTPUT_LOG_KIND"]
 
+#: Topic prefix of inbound controller plans (docs/protocol.md).
+PLAN_PREFIX = b"plan."
+
 #: The caution every warning and the status heartbeat carry (BRIEF: Safety).
 ADVISORY = (
     "Advisory only: wingwatch is not a safety system or an interlock; the facility's limit "
@@ -81,6 +84,8 @@ class Pipeline:
         self.stages: list[Stage] = []
         self.last_sample_t: float | None = None
         self.first_sample_t: float | None = None
+        self.plans = 0  # controller plans accepted / refused
+        self.plans_rejected = 0
 
     def reset(self) -> None:
         self.ingest.reset()
@@ -92,6 +97,8 @@ class Pipeline:
 
     def process(self, topic: bytes, payload: bytes, *, parts_ok: bool = True
                 ) -> tuple[IngestVerdict, list[Output]]:
+        if parts_ok and topic.startswith(PLAN_PREFIX):
+            return self._plan(topic, payload), []
         verdict = self.ingest.update(topic, payload, parts_ok=parts_ok)
         outputs: list[Output] = []
         frame = verdict.frame
@@ -115,8 +122,27 @@ class Pipeline:
                 outputs.extend(stage.update(block))
         return verdict, outputs
 
+    def _plan(self, topic: bytes, payload: bytes) -> IngestVerdict:
+        """A controller's announced alpha plan: validated, counted, handed to the stages that
+        read plans (the curvature-margin watcher). Deterministic: its place in the recorded
+        stream decides when it takes effect."""
+        from wingwatch.daemon.errors import FrameRejected
+        from wingwatch.daemon.plan import decode_plan
+
+        try:
+            plan = decode_plan(topic, payload, max_bytes=self.config.limits.max_payload_bytes)
+        except FrameRejected as exc:
+            self.plans_rejected += 1
+            return IngestVerdict(False, reason=exc.reason, detail=exc.detail)
+        self.plans += 1
+        for stage in self.stages:
+            if hasattr(stage, "set_plan"):
+                stage.set_plan(plan)
+        return IngestVerdict(True, plan=True)
+
     def state_dict(self) -> dict[str, Any]:
         return {
+            "plans": [self.plans, self.plans_rejected],
             "ingest": self.ingest.state_dict(),
             "channel_map": self.channel_map.state_dict(),
             "stages": [s.state_dict() for s in self.stages],
@@ -125,6 +151,7 @@ class Pipeline:
         }
 
     def load_state_dict(self, state: dict[str, Any]) -> None:
+        self.plans, self.plans_rejected = state.get("plans", [0, 0])
         self.ingest.load_state_dict(state["ingest"])
         self.channel_map.load_state_dict(state["channel_map"])
         for s, st in zip(self.stages, state["stages"], strict=True):
@@ -189,13 +216,15 @@ class Session:
         payload = parts[1] if parts_ok else b"".join(parts[1:])
         verdict, outputs = self.pipeline.process(topic, payload, parts_ok=parts_ok)
         if self.recorder is not None:
-            if verdict.accepted:
+            if verdict.accepted and verdict.plan:
+                self.recorder.append(rl.KIND_PLAN, topic, payload, t_recv)
+            elif verdict.accepted:
                 self.recorder.append(rl.KIND_INBOUND, topic, payload, t_recv)
             else:
                 # flags bit 0: the message did not have exactly two parts (replay re-rejects it)
                 self.recorder.append(rl.KIND_REJECTED, topic, payload, t_recv,
                                      flags=0 if parts_ok else 1, aux=verdict.reason_code)
-        if verdict.accepted and self.first_wall is None:
+        if verdict.accepted and not verdict.plan and self.first_wall is None:
             self.first_wall = t_recv
         for out in outputs:
             self.emit(out, t_recv)

@@ -134,3 +134,37 @@ def test_flow_speed_change_is_caught_within_5_s_and_nothing_before(tmp_path, ref
     assert all("advisory" in w["message"].lower() for w in warns)
     watch = [decode_message(o.payload) for o in res.outputs if o.kind == KIND_WATCH]
     assert watch and {"margin", "drift", "stale", "sensors"} <= set(watch[-1])
+
+
+def test_controller_plan_reaches_the_margin_forecast_and_is_recorded(tmp_path):
+    from test_identifier import frames, motion, outputs
+
+    from wingwatch.daemon import replaylog as rl
+    from wingwatch.daemon.plan import encode_plan
+    from wingwatch.daemon.replay import replay_log
+    from wingwatch.daemon.service import make_pipeline, make_recorder
+    from wingwatch.daemon.pipeline import Session
+
+    cfg = load_config()
+    alpha, ad, add = motion(6000)
+    msgs = list(frames(alpha, outputs(alpha, ad, add)))
+    plan = encode_plan("mpc", 3.0, 0.01, np.full(200, math.radians(6.0)))
+    bad_plan = (b"plan.mpc", b"\xc1")
+    writer = make_recorder(cfg, path=tmp_path / "p.wwlog", source="daemon", start_unix=0.0)
+    outs = []
+    s = Session(make_pipeline(cfg), recorder=writer, sink=lambda t, p: outs.append(decode_message(p)))
+    for i, m in enumerate(msgs):
+        if i == 300:
+            s.inbound(list(plan), 0.0)
+            s.inbound(list(bad_plan), 0.0)
+        s.inbound(list(m), 0.0)
+    writer.close()
+    assert s.pipeline.plans == 1 and s.pipeline.plans_rejected == 1
+    watch = [m for m in outs if m["kind"] == "watch"]
+    src = {round(m["t"]): m["margin"]["source"] for m in watch}
+    assert any(v == "plan" for t, v in src.items() if 3 <= t <= 4.9)  # while the plan lasts
+    assert src[max(src)] == "hold"  # after it has run out
+    kinds = [r.kind for r in rl.LogReader.open(tmp_path / "p.wwlog")]
+    assert kinds.count(rl.KIND_PLAN) == 1 and kinds.count(rl.KIND_REJECTED) == 1
+    res = replay_log(tmp_path / "p.wwlog")  # the plan replays at its place in the stream
+    assert res.session.pipeline.plans == 1

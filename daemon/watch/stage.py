@@ -194,6 +194,10 @@ class Watcher:
         self.mode_label: int | None = None
         self.margin_samples = 0
 
+    def set_plan(self, plan: Any) -> None:
+        """The controller's announced alpha plan (read by the curvature-margin forecast)."""
+        self.plan = (float(plan.t0), float(plan.dt), np.asarray(plan.alpha, dtype=float))
+
     @property
     def model_id(self) -> str:
         m = self.ident.in_service
@@ -440,7 +444,10 @@ class Watcher:
 
     def _margin_warnings(self, t: float) -> list[Output]:
         s = self.settings
-        self.last_margin = fc = self.margin.forecast(self.plan, t)
+        plan = self.plan
+        if plan is not None and plan[0] + plan[1] * (plan[2].size - 1) < t:
+            plan = None  # the plan has run out: back to a hold of the present angle
+        self.last_margin = fc = self.margin.forecast(plan, t)
         self.margin_samples += int(self.ident.last_block["a"].size)
         if self.margin_samples * self.dt < 2.0:
             return []  # the filter state is still settling from its start
@@ -496,6 +503,7 @@ class Watcher:
             "base": None if self.base is None else self.base.copy(),
             "base_sd": None if self.base_sd is None else self.base_sd.copy(),
             "base_acc": [a.copy() for a in self.base_acc], "base_offset": dict(self.base_offset),
+            "plan": None if self.plan is None else [self.plan[0], self.plan[1], self.plan[2].copy()],
             "mode_base": None if self.mode_base is None else self.mode_base.copy(),
             "mode_sd": None if self.mode_sd is None else self.mode_sd.copy(),
             "mode_acc": list(self.mode_acc), "mode_label": self.mode_label,
@@ -528,6 +536,8 @@ class Watcher:
         self.base_sd = None if st["base_sd"] is None else np.array(st["base_sd"], dtype=float)
         self.base_acc = [np.array(a, dtype=float) for a in st["base_acc"]]
         self.base_offset = dict(st["base_offset"])
+        pl = st.get("plan")
+        self.plan = None if pl is None else (float(pl[0]), float(pl[1]), np.asarray(pl[2], float))
         self.mode_base = None if st["mode_base"] is None else np.array(st["mode_base"], dtype=float)
         self.mode_sd = None if st["mode_sd"] is None else np.array(st["mode_sd"], dtype=float)
         self.mode_acc = [tuple(x) for x in st["mode_acc"]]
