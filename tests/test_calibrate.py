@@ -166,3 +166,18 @@ def test_missing_channel_is_named(tmp_path):
         "[outputs.curvature]\nstrain = 'strain_tip'\n")
     with pytest.raises(CalibrationError, match="strain_tip"):
         load_record(CAL, config=load_config(bad))
+
+
+def test_contribution_plot_is_a_png_of_the_stated_size(tmp_path):
+    pytest.importorskip("matplotlib")
+    out = tmp_path / "m.wwmodel.json"
+    png = tmp_path / "contrib.png"
+    r = subprocess.run([sys.executable, "-m", "wingwatch.daemon.cli", "calibrate", str(CAL),
+                        "--test", str(TEST), "--out", str(out), "--plot", str(png), "--rank", "6"],
+                       capture_output=True, text=True, timeout=180)
+    assert r.returncode == 0, r.stderr
+    data = png.read_bytes()
+    assert data[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, ISO/IEC 15948)
+    w, h = int.from_bytes(data[16:20], "big"), int.from_bytes(data[20:24], "big")
+    assert (w, h) == (900, 600)  # 9 x 6 in at 100 dpi, as the plot is made
+    assert load_model(out).rank == 6
