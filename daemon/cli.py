@@ -48,11 +48,21 @@ def _cmd_run(args: argparse.Namespace) -> int:
     from wingwatch.daemon.service import Daemon
 
     cfg = load_config(args.config)
+    reference = args.model
+    if args.resume:
+        from wingwatch.daemon.checkpoint import read_checkpoint
+        from wingwatch.daemon.config import config_from_dict
+        from wingwatch.daemon.modelfile import model_from_dict
+
+        ck = read_checkpoint(args.resume)
+        cfg = config_from_dict(ck["config"], source=f"{args.resume} (checkpoint)")
+        if ck.get("reference_model"):
+            reference = model_from_dict(ck["reference_model"], "the checkpoint's reference model")
     if args.print_config:
         sys.stdout.write(to_toml(cfg))
         return 0
     daemon = Daemon(cfg, record=not args.no_record, record_dir=args.record_dir,
-                    insecure=args.insecure, reference=args.model)
+                    insecure=args.insecure, reference=reference, resume=args.resume)
     try:
         def _stop(signum: int, frame: Any) -> None:
             daemon.stop()
@@ -446,6 +456,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--model", metavar="FILE", help="reference model file from 'wingwatch calibrate' "
                    "(default: identify.reference_model; none: run cold)")
     p.add_argument("--record-dir", metavar="DIR", help="record into DIR instead of recorder.directory")
+    p.add_argument("--resume", metavar="RUN_DIR", help="restart a killed daemon: continue its run's "
+                   "log in a new segment and its identification from the last checkpoint")
     p.add_argument("--no-record", action="store_true", help="do not write a replay log")
     p.add_argument("--insecure", action="store_true", help="allow binding beyond loopback "
                    "without authentication (logged loudly)")

@@ -116,6 +116,7 @@ class RecorderSpec:
     directory: str
     rotate_mb: float
     fsync_interval_s: float
+    checkpoint_s: float = 5.0
 
 
 @dataclass(frozen=True)
@@ -476,12 +477,14 @@ def config_from_dict(raw: dict[str, Any], source: str = "<dict>") -> Config:
         raise ck.fail("outputs", "must take all its channels from one stream")
 
     r = ck.table(raw, "recorder")
-    ck.no_unknown(r, "recorder.", {"enabled", "directory", "rotate_mb", "fsync_interval_s"})
+    ck.no_unknown(r, "recorder.", {"enabled", "directory", "rotate_mb", "fsync_interval_s",
+                                   "checkpoint_s"})
     recorder = RecorderSpec(
         enabled=ck.boolean(r, "recorder.", "enabled"),
         directory=ck.string(r, "recorder.", "directory"),
         rotate_mb=ck.number(r, "recorder.", "rotate_mb", positive=True),
         fsync_interval_s=ck.number(r, "recorder.", "fsync_interval_s", nonneg=True),
+        checkpoint_s=ck.number(r, "recorder.", "checkpoint_s", nonneg=True),
     )
 
     sec = ck.table(raw, "security")

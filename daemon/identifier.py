@@ -660,6 +660,7 @@ class OnlineIdentifier:
             "rejections": self.rejections, "accepted": self.accepted,
             "rate_sq": self.rate_sq, "rate_n": self.rate_n,
             "win": [self.win_G.copy(), self.win_b.copy(), self.win_yy.copy(), self.win_n],
+            "last_window": None if self.last_window is None else dict(self.last_window),
             "in_service": self.in_service,
         }
 
@@ -707,4 +708,8 @@ class OnlineIdentifier:
         G, b, yy, wn = st["win"]
         self.win_G, self.win_b = np.array(G, dtype=float), np.array(b, dtype=float)
         self.win_yy, self.win_n = np.array(yy, dtype=float), int(wn)
+        lw = st.get("last_window")
+        self.last_window = None if lw is None else {
+            k: (np.asarray(v, dtype=float) if k in ("theta", "se", "s2", "interpretable") else v)
+            for k, v in lw.items()}
         self.in_service = st["in_service"]

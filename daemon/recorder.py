@@ -109,9 +109,10 @@ class LogWriter:
         start_unix: float | None = None,
         backlog_bytes: int = 64 << 20,
         clock=time.monotonic,
+        continue_run: str | Path | None = None,
     ) -> None:
-        if (directory is None) == (path is None):
-            raise ValueError("give exactly one of directory= or path=")
+        if sum(x is not None for x in (directory, path, continue_run)) != 1:
+            raise ValueError("give exactly one of directory=, path= or continue_run=")
         if rotate_bytes <= 0:
             raise ValueError("rotate_bytes must be positive")
         if fsync_interval_s < 0:
@@ -124,7 +125,16 @@ class LogWriter:
         self.start_unix = time.time() if start_unix is None else float(start_unix)
         self.run_id = make_run_id(self.start_unix)
         self._extra = dict(header or {})
-        if directory is not None:
+        if continue_run is not None:
+            # A restarted daemon continues its run: the same folder, the next segment number.
+            self.run_dir = Path(continue_run)
+            if not self.run_dir.is_dir():
+                raise ValueError(f"{self.run_dir}: no such run folder to continue")
+            self.run_id = self.run_dir.name
+            self._single = None
+            existing = sorted(self.run_dir.glob("segment-*.wwlog"))
+            self._first_index = (int(existing[-1].stem.split("-")[1]) + 1) if existing else 0
+        elif directory is not None:
             self.run_dir: Path | None = Path(directory) / self.run_id
             suffix = 0
             while self.run_dir.exists():  # two runs started in the same second
@@ -136,6 +146,7 @@ class LogWriter:
             self.run_dir = None
             self._single = Path(path)
             self._single.parent.mkdir(parents=True, exist_ok=True)
+        self._first_index = getattr(self, "_first_index", 0)
         self.segment = -1
         self.fd: int | None = None
         self.seg_bytes = 0
@@ -176,7 +187,8 @@ class LogWriter:
         return h
 
     def _open_segment(self) -> None:
-        index = len(self.paths)  # a failed open does not use up a segment number
+        # a failed open does not use up a segment number; a continued run counts on from its last
+        index = len(self.paths) + getattr(self, "_first_index", 0)
         if self._single is not None:
             p = self._single
             flags = os.O_WRONLY | os.O_CREAT | os.O_TRUNC

@@ -138,7 +138,8 @@ class Daemon:
 
     def __init__(self, config: Config, *, record: bool = True, record_dir: str | Path | None = None,
                  context: zmq.Context | None = None, insecure: bool = False,
-                 reference: Any = None, identify: bool = True) -> None:
+                 reference: Any = None, identify: bool = True,
+                 resume: str | Path | None = None) -> None:
         check_binds(config, insecure)
         self.config = config
         self._own_ctx = context is None
@@ -153,10 +154,24 @@ class Daemon:
 
             reference = load_model(config.identify["reference_model"])
         self.reference = reference
-        self.recorder = (
-            make_recorder(config, directory=record_dir, reference=reference)
-            if record and config.recorder.enabled else None
-        )
+        state = None
+        if resume is not None:
+            from wingwatch.daemon.checkpoint import read_checkpoint
+
+            state = read_checkpoint(resume)["state"]
+            header = {"source": "daemon", "config": config.as_dict(),
+                      "config_source": config.source, "resumed_from_checkpoint": True}
+            if reference is not None:
+                header["reference_model"] = reference.as_dict()
+            rec = config.recorder
+            self.recorder = LogWriter(continue_run=resume, header=header,
+                                      rotate_bytes=int(rec.rotate_mb * (1 << 20)),
+                                      fsync_interval_s=rec.fsync_interval_s)
+        else:
+            self.recorder = (
+                make_recorder(config, directory=record_dir, reference=reference)
+                if record and config.recorder.enabled else None
+            )
         self.sub = self.ctx.socket(zmq.SUB)
         self.pub = self.ctx.socket(zmq.PUB)
         self.rep = self.ctx.socket(zmq.REP)
@@ -187,8 +202,11 @@ class Daemon:
                 f"{config.source}: cannot bind the daemon's sockets ({exc}); is another daemon "
                 "running on these endpoints?"
             ) from None
-        self.session = Session(make_pipeline(config, reference, identify=identify),
-                               recorder=self.recorder, sink=self._send)
+        pipeline = make_pipeline(config, reference, identify=identify)
+        if state is not None:
+            pipeline.load_state_dict(state)  # identification carries on, not from scratch
+        self.session = Session(pipeline, recorder=self.recorder, sink=self._send)
+        self.checkpoints = 0
         self.publish_drops = 0
         self.messages = 0
         self.snapshot_requests = 0
@@ -221,9 +239,26 @@ class Daemon:
             reply = encode_snapshot(last.model, list(last.warnings.values()), last.status)
         self.rep.send(reply)
 
+    def write_checkpoint(self) -> Path | None:
+        """Write the pipeline's state beside the log (atomically); None when not recording."""
+        if self.recorder is None or self.recorder.run_dir is None:
+            return None
+        from wingwatch.daemon.checkpoint import CHECKPOINT_NAME, write_checkpoint
+
+        p = self.session.pipeline
+        try:
+            out = write_checkpoint(self.recorder.run_dir / CHECKPOINT_NAME, p.state_dict(),
+                                   t_sample=p.last_sample_t, config=self.config.as_dict(),
+                                   reference=self.reference.as_dict() if self.reference else None)
+        except OSError as exc:
+            log.warning("could not write the checkpoint: %s", exc)
+            return None
+        self.checkpoints += 1
+        return out
+
     def _extra_status(self) -> dict[str, Any]:
         out = {"publish_drops": self.publish_drops, "snapshot_requests": self.snapshot_requests,
-               "snapshot_rejected": self.snapshot_rejected}
+               "snapshot_rejected": self.snapshot_rejected, "checkpoints": self.checkpoints}
         if self.curve is not None:
             self.curve.poll_refusals()
             out["auth_refused"] = self.curve.refused
@@ -246,6 +281,8 @@ class Daemon:
         period = self.config.status_period_s
         start = time.monotonic()
         next_status = start
+        ck_period = self.config.recorder.checkpoint_s
+        next_ck = start + ck_period if ck_period > 0 else float("inf")
         try:
             while not self.stop_event.is_set():
                 now = time.monotonic()
@@ -254,6 +291,9 @@ class Daemon:
                 if now >= next_status:
                     self.session.status(time.time(), self._extra_status())
                     next_status = now + period
+                if now >= next_ck:
+                    self.write_checkpoint()
+                    next_ck = now + ck_period
                 timeout = max(0, min(_POLL_MS, int((next_status - now) * 1000)))
                 ready = dict(poller.poll(timeout))
                 if not ready:

@@ -191,11 +191,26 @@ class MarginForecaster:
 
     def state_dict(self) -> dict[str, Any]:
         return {"x": self.x.copy(), "ad_sq": self.ad_sq, "ad_n": self.ad_n,
-                "last": dict(self.last), "model_key": self.model_key}
+                "last": dict(self.last),
+                "model_key": None if self.model_key is None else list(self.model_key),
+                "A": self.A.copy(), "B": self.B.copy(), "theta": self.theta.copy(),
+                "gain": self.gain.copy(), "P": self.P.copy(), "y0": self.y0.copy(),
+                "alpha0": self.alpha0, "r_var": self.r_var.copy()}
 
     def load_state_dict(self, st: dict[str, Any]) -> None:
         self.x = np.array(st["x"], dtype=float)
         self.ad_sq = float(st["ad_sq"])
         self.ad_n = float(st["ad_n"])
         self.last = dict(st["last"])
-        self.model_key = None  # the stage sets the model again from the identifier's state
+        key = st["model_key"]
+        self.model_key = None if key is None else tuple(key)
+        r = int(np.asarray(st["x"]).size)
+        self.A = np.asarray(st["A"], dtype=float).reshape(r, r)
+        self.B = np.asarray(st["B"], dtype=float).reshape(r, 1)
+        self.theta = np.asarray(st["theta"], dtype=float)
+        self.C = self.theta[3:3 + r].T
+        self.gain = np.asarray(st["gain"], dtype=float).reshape(r, 2)
+        self.P = np.asarray(st["P"], dtype=float).reshape(r, r)
+        self.y0 = np.asarray(st["y0"], dtype=float)
+        self.alpha0 = float(st["alpha0"])
+        self.r_var = np.asarray(st["r_var"], dtype=float)
