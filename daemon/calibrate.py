@@ -36,7 +36,7 @@ import numpy as np
 from wingwatch.daemon import replaylog as rl
 from wingwatch.daemon.codec import decode_sensor_frame
 from wingwatch.daemon.condition import ChannelMap
-from wingwatch.daemon.config import Config, config_from_dict
+from wingwatch.daemon.config import Config, config_from_recorded
 from wingwatch.daemon.errors import ConfigError, FrameRejected, IdentificationError
 from wingwatch.daemon.identify.differentiate import differentiate, lag_of, noise_gain, savgol_kernels
 from wingwatch.daemon.identify.era import choose_rank
@@ -102,7 +102,7 @@ def load_record(path: str | Path, *, config: Config | None = None, window: int =
     reader = rl.LogReader.open(path)
     if config is None:
         try:
-            config = config_from_dict(reader.header["config"], source=f"{path} (recorded configuration)")
+            config = config_from_recorded(reader.header["config"], source=f"{path} (recorded configuration)")
         except KeyError:
             raise CalibrationError(f"{path}: the log header holds no configuration; pass --config "
                                    "with the channel map.") from None

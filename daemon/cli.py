@@ -51,11 +51,11 @@ def _cmd_run(args: argparse.Namespace) -> int:
     reference = args.model
     if args.resume:
         from wingwatch.daemon.checkpoint import read_checkpoint
-        from wingwatch.daemon.config import config_from_dict
+        from wingwatch.daemon.config import config_from_recorded
         from wingwatch.daemon.modelfile import model_from_dict
 
         ck = read_checkpoint(args.resume)
-        cfg = config_from_dict(ck["config"], source=f"{args.resume} (checkpoint)")
+        cfg = config_from_recorded(ck["config"], source=f"{args.resume} (checkpoint)")
         if ck.get("reference_model"):
             reference = model_from_dict(ck["reference_model"], "the checkpoint's reference model")
     if args.print_config:
@@ -189,6 +189,23 @@ def _cmd_replay(args: argparse.Namespace) -> int:
 
     if not args.debug:  # the replay summary counts rejections; do not log each again
         logging.getLogger("wingwatch.ingest").setLevel(logging.ERROR)
+    if args.incident is not None:
+        from wingwatch.daemon.incident import write_incident
+
+        if not args.out:
+            from wingwatch.daemon.errors import ConfigError
+
+            raise ConfigError("--incident needs --out DIR for the bundle.")
+        s = write_incident(args.log, args.incident, args.window, args.out)
+        if args.json:
+            _print_json(s)
+        else:
+            err_console.print(f"incident bundle written to {s['out']}: slice of {s['frames']} "
+                              f"frames, model in service {s['model_in_service']}, "
+                              f"{len(s['warnings'])} warning events"
+                              + (f", plot {s['plot']}" if s["plot"] else
+                                 " (no plot: install the plotting extra)"))
+        return 0
     cfg = load_config(args.config) if args.config else None
     speed = None if args.fast or args.speed is None else args.speed
     sink = None
@@ -485,6 +502,11 @@ def build_parser() -> argparse.ArgumentParser:
                    "endpoint (for a monitor or a controller)")
     p.add_argument("--compare", action="store_true", help="compare the outputs with the recorded "
                    "ones; exit 1 on a divergence")
+    p.add_argument("--incident", type=float, metavar="T", help="write an incident bundle around "
+                   "source time T (needs --out)")
+    p.add_argument("--window", type=float, default=10.0, metavar="S", help="half-width of the "
+                   "incident window, s (default 10)")
+    p.add_argument("--out", metavar="DIR", help="folder for the incident bundle")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=_cmd_replay)
 

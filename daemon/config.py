@@ -47,6 +47,7 @@ __all__ = [
     "load_config",
     "default_config_text",
     "config_from_dict",
+    "config_from_recorded",
     "to_toml",
     "endpoint_is_loopback",
     "QUANTITIES",
@@ -358,6 +359,13 @@ _TOP_KEYS = {
     "watch",
     "publish",
 }
+
+
+def config_from_recorded(raw: dict[str, Any], source: str) -> Config:
+    """A configuration recorded by this or an earlier version (a log header, a checkpoint):
+    keys that version did not have yet take the shipped defaults."""
+    base = _parse_toml(default_config_text(), "the built-in default configuration")
+    return config_from_dict(_merge(base, raw), source=source)
 
 
 def config_from_dict(raw: dict[str, Any], source: str = "<dict>") -> Config:

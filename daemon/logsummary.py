@@ -13,7 +13,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from wingwatch.daemon import replaylog as rl
-from wingwatch.daemon.config import config_from_dict, load_config
+from wingwatch.daemon.config import config_from_recorded, load_config
 from wingwatch.daemon.errors import ConfigError
 from wingwatch.daemon.ingest import BurstLog, Ingest
 
@@ -30,7 +30,7 @@ def summarise_log(path: str | Path, progress: Callable[[int, int], None] | None 
     header = reader.header
     config_note = ""
     try:
-        config = config_from_dict(header["config"], source=f"{path} (header)")
+        config = config_from_recorded(header["config"], source=f"{path} (header)")
     except (KeyError, TypeError, ConfigError) as exc:
         config = load_config()
         config_note = f"header configuration unusable ({exc}); counted with the built-in default"

@@ -23,7 +23,7 @@ from typing import Any, Callable, Iterator
 
 from wingwatch.daemon import replaylog as rl
 from wingwatch.daemon.codec import TOPICS, decode_message, peek_sensor_header
-from wingwatch.daemon.config import Config, config_from_dict
+from wingwatch.daemon.config import Config, config_from_recorded
 from wingwatch.daemon.errors import ConfigError, LogFormatError
 from wingwatch.daemon.pipeline import OUTPUT_LOG_KIND, Pipeline, Session
 from wingwatch.daemon.recorder import LogWriter
@@ -97,7 +97,7 @@ def config_of_log(path: str | Path) -> Config:
     """The configuration recorded in a log's header."""
     reader = rl.LogReader.open(path)
     try:
-        return config_from_dict(reader.header["config"], source=f"{path} (recorded configuration)")
+        return config_from_recorded(reader.header["config"], source=f"{path} (recorded configuration)")
     except KeyError:
         raise LogFormatError(f"{path}: the log header holds no configuration; pass --config.") from None
 
