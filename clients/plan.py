@@ -16,11 +16,11 @@ dropped by ZeroMQ. Encoding and validation are :func:`wingwatch.daemon.plan.enco
 
 from __future__ import annotations
 
-import time
 from typing import Any
 
 import zmq
 
+from wingwatch.clients.publisher import XpubLink
 from wingwatch.daemon.plan import encode_plan
 
 __all__ = ["PlanPublisher"]
@@ -46,32 +46,16 @@ class PlanPublisher:
                  context: zmq.Context | None = None, curve: dict | None = None,
                  sndhwm: int = 1000) -> None:
         encode_plan(controller, 0.0, 1.0, [0.0])  # refuses a bad name here, not at the first send
-        if sndhwm < 1:
-            raise ValueError("sndhwm must be at least 1")
         self.endpoint = endpoint
         self.controller = controller
         self.sent = 0
-        self._subscribed = False
-        self._own_ctx = context is None
-        self.ctx = context or zmq.Context()
-        self.sock = self.ctx.socket(zmq.XPUB)
-        self.sock.setsockopt(zmq.LINGER, 1000)
-        self.sock.setsockopt(zmq.SNDHWM, int(sndhwm))
-        for opt, value in (curve or {}).items():  # CurveZMQ client keys (daemon/security.py)
-            self.sock.setsockopt(opt, value)
-        self.sock.connect(endpoint)
+        self.link = XpubLink(endpoint, context=context, sndhwm=sndhwm, curve=curve)
+        self.sock = self.link.sock
+        self.ctx = self.link.ctx
 
     def wait_ready(self, timeout_s: float = 5.0) -> bool:
-        """Wait until a subscriber has subscribed (True), or ``timeout_s`` passes (False)."""
-        deadline = time.monotonic() + timeout_s
-        while not self._subscribed:
-            left = deadline - time.monotonic()
-            if left <= 0:
-                return False
-            if self.sock.poll(int(left * 1000) + 1, zmq.POLLIN):
-                if self.sock.recv()[:1] == b"\x01":
-                    self._subscribed = True
-        return True
+        """Wait until the daemon has subscribed (True), or ``timeout_s`` passes (False)."""
+        return self.link.wait_ready(timeout_s)
 
     def encode(self, t0: float, dt: float, alpha: Any) -> tuple[bytes, bytes]:
         """The ``(topic, payload)`` of a plan, without sending it (ValueError when invalid)."""
@@ -88,9 +72,7 @@ class PlanPublisher:
         return topic, payload
 
     def close(self) -> None:
-        self.sock.close()
-        if self._own_ctx:
-            self.ctx.term()
+        self.link.close()
 
     def __enter__(self) -> "PlanPublisher":
         return self

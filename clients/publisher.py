@@ -23,7 +23,50 @@ import zmq
 
 from wingwatch.daemon.codec import SensorFrame, encode_sensor_frame
 
-__all__ = ["FramePublisher"]
+__all__ = ["FramePublisher", "XpubLink"]
+
+
+class XpubLink:
+    """An XPUB socket to the daemon's sensor endpoint, shared by every publisher helper.
+
+    XPUB rather than PUB so that :meth:`wait_ready` can see the daemon's subscription arrive;
+    messages sent before it would be dropped by ZeroMQ.
+    """
+
+    def __init__(self, endpoint: str, *, context: zmq.Context | None = None, sndhwm: int = 1000,
+                 curve: dict | None = None, bind: bool = False) -> None:
+        if sndhwm < 1:
+            raise ValueError("sndhwm must be at least 1")
+        self.endpoint = endpoint
+        self._own_ctx = context is None
+        self.ctx = context or zmq.Context()
+        self.sock = self.ctx.socket(zmq.XPUB)
+        self.sock.setsockopt(zmq.LINGER, 1000)
+        self.sock.setsockopt(zmq.SNDHWM, int(sndhwm))
+        for opt, value in (curve or {}).items():  # CurveZMQ client keys (see daemon/security.py)
+            self.sock.setsockopt(opt, value)
+        self._subscribed = False
+        if bind:
+            self.sock.bind(endpoint)
+        else:
+            self.sock.connect(endpoint)
+
+    def wait_ready(self, timeout_s: float = 5.0) -> bool:
+        """Wait until a subscriber has subscribed (True), or ``timeout_s`` passes (False)."""
+        deadline = time.monotonic() + timeout_s
+        while not self._subscribed:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                return False
+            if self.sock.poll(int(left * 1000) + 1, zmq.POLLIN):
+                if self.sock.recv()[:1] == b"\x01":
+                    self._subscribed = True
+        return True
+
+    def close(self) -> None:
+        self.sock.close()
+        if self._own_ctx:
+            self.ctx.term()
 
 
 class FramePublisher:
@@ -80,31 +123,13 @@ class FramePublisher:
         self.seq = int(start_seq)
         self.t0 = float(t0)
         self.sent = 0
-        self._own_ctx = context is None
-        self.ctx = context or zmq.Context()
-        self.sock = self.ctx.socket(zmq.XPUB)
-        self.sock.setsockopt(zmq.LINGER, 1000)
-        self.sock.setsockopt(zmq.SNDHWM, sndhwm)
-        self._subscribed = False
-        for opt, value in (curve or {}).items():  # CurveZMQ client keys (see daemon/security.py)
-            self.sock.setsockopt(opt, value)
-        if bind:
-            self.sock.bind(endpoint)
-        else:
-            self.sock.connect(endpoint)
+        self.link = XpubLink(endpoint, context=context, sndhwm=sndhwm, curve=curve, bind=bind)
+        self.sock = self.link.sock
+        self.ctx = self.link.ctx
 
     def wait_ready(self, timeout_s: float = 5.0) -> bool:
-        """Wait until a subscriber has subscribed (True), or ``timeout_s`` passes (False)."""
-        deadline = time.monotonic() + timeout_s
-        while not self._subscribed:
-            left = deadline - time.monotonic()
-            if left <= 0:
-                return False
-            if self.sock.poll(int(left * 1000) + 1, zmq.POLLIN):
-                msg = self.sock.recv()
-                if msg[:1] == b"\x01":
-                    self._subscribed = True
-        return True
+        """Wait until the daemon has subscribed (True), or ``timeout_s`` passes (False)."""
+        return self.link.wait_ready(timeout_s)
 
     def frame(self, samples: Any, *, t0: float | None = None, seq: int | None = None,
               flags: int | None = None) -> SensorFrame:
@@ -139,9 +164,7 @@ class FramePublisher:
         self.sent += 1
 
     def close(self) -> None:
-        self.sock.close()
-        if self._own_ctx:
-            self.ctx.term()
+        self.link.close()
 
     def __enter__(self) -> "FramePublisher":
         return self

@@ -37,7 +37,7 @@ from wingwatch.daemon import replaylog as rl
 from wingwatch.daemon.codec import decode_sensor_frame
 from wingwatch.daemon.condition import ChannelMap
 from wingwatch.daemon.config import Config, config_from_recorded
-from wingwatch.daemon.errors import ConfigError, FrameRejected, IdentificationError
+from wingwatch.daemon.errors import FrameRejected, IdentificationError
 from wingwatch.daemon.identify.differentiate import differentiate, lag_of, noise_gain, savgol_kernels
 from wingwatch.daemon.identify.era import choose_rank
 from wingwatch.daemon.identify.interpretable import regressor, simulate_states
@@ -451,8 +451,8 @@ def calibrate(cal: Record, test: Record | None = None, *, rank: int | None = Non
     else:
         hsv_rank = choose_rank(est.hankel_sv, energy=0.99, gap=4.0, max_rank=cap)
         chosen = max(r for r in fits if r <= hsv_rank) if any(r <= hsv_rank for r in fits) else min(fits)
-        reason = (f"from the Hankel singular values (99 % of their sum, or the last drop of 4x "
-                  f"before it); pass --test LOG to choose by the error on a test manoeuvre")
+        reason = ("from the Hankel singular values (99 % of their sum, or the last drop of 4x "
+                  "before it); pass --test LOG to choose by the error on a test manoeuvre")
     model, tf = fits[chosen]
     model = _with_extra(model, cal, test, errors, pr)
 

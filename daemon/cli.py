@@ -354,7 +354,6 @@ def _calibration_plot(result: Any, rec: Any, path: str) -> str | None:
     except ImportError:
         err_console.print("note: no plot: install the plotting extra (pip install 'wingwatch[plot]')")
         return None
-    import numpy as np
 
     from wingwatch.daemon.calibrate import contributions, find_lead_in
     from wingwatch.daemon.identify.interpretable import simulate_states

@@ -32,20 +32,10 @@ TEST_SCENARIO = "test-manoeuvre"
 
 
 def _rig_log(scenario: str, path: Path, config: Config) -> Path:
-    from wingwatch.daemon.codec import SensorFrame, encode_sensor_frame
     from wingwatch.daemon.rig.scenario import load_scenario
-    from wingwatch.daemon.rig.source import VirtualRig
-    from wingwatch.daemon.service import record_frames
+    from wingwatch.daemon.rig.source import VirtualRig, write_rig_log
 
-    rig = VirtualRig(load_scenario(scenario))
-
-    def msgs():
-        for f in rig.frames():
-            fr = SensorFrame("rig", f.seq, f.t0, rig.rate_hz, rig.channels, f.samples)
-            yield (*encode_sensor_frame(fr), f.t0)
-
-    record_frames(msgs(), config, path)
-    return path
+    return write_rig_log(VirtualRig(load_scenario(scenario)), path, config)
 
 
 def ensure_reference(directory: Path, config: Config, say=print) -> Path:

@@ -99,7 +99,6 @@ def write_incident(log: str | Path, t: float, window: float, out: str | Path) ->
 
     # 2. the model in service at t, the warnings and traces: replay up to the window's end
     res = replay_log(log, t_to=hi)
-    ident = next((s for s in res.session.pipeline.stages if hasattr(s, "in_service")), None)
     models = [decode_message(o.payload) for o in res.outputs if o.kind == rl.KIND_MODEL]
     warns = [decode_message(o.payload) for o in res.outputs if o.kind == rl.KIND_WARNING]
     watch = [decode_message(o.payload) for o in res.outputs if o.kind == rl.KIND_WATCH]

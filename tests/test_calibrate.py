@@ -12,13 +12,11 @@ import numpy as np
 import pytest
 
 from wingwatch.daemon.calibrate import CalibrationError, calibrate, load_record
-from wingwatch.daemon.codec import SensorFrame, encode_sensor_frame
 from wingwatch.daemon.config import load_config
 from wingwatch.daemon.errors import ModelFileError
 from wingwatch.daemon.modelfile import load_model, save_model
 from wingwatch.daemon.rig.scenario import scenario_dir, scenario_from_dict
-from wingwatch.daemon.rig.source import VirtualRig
-from wingwatch.daemon.service import record_frames
+from wingwatch.daemon.rig.source import VirtualRig, write_rig_log
 
 REPO = Path(__file__).resolve().parents[1]
 CAL = REPO / "replay_logs" / "rig-calibration.wwlog"
@@ -33,16 +31,8 @@ def rig_log(tmp: Path, name: str, **changes) -> Path:
             doc["motion"]["ramps"][0].update(values)
         else:
             doc.setdefault(table, {}).update(values)
-    rig = VirtualRig(scenario_from_dict(doc))
-
-    def msgs():
-        for f in rig.frames():
-            fr = SensorFrame("rig", f.seq, f.t0, rig.rate_hz, rig.channels, f.samples)
-            yield (*encode_sensor_frame(fr), f.t0)
-
     path = tmp / f"{name}.wwlog"
-    record_frames(msgs(), load_config(), path)
-    return path
+    return write_rig_log(VirtualRig(scenario_from_dict(doc)), path)
 
 
 @pytest.fixture(scope="module")

@@ -7,7 +7,6 @@ import json
 import subprocess
 import sys
 
-import numpy as np
 import pytest
 
 from test_identifier import frames, motion, outputs

@@ -3,15 +3,11 @@ segment, and identification resumes from the last checkpoint, not from scratch."
 
 from __future__ import annotations
 
-import json
 import os
 import signal
 import subprocess
 import sys
 import time
-from pathlib import Path
-
-import pytest
 
 from conftest import write_config
 from test_identifier import frames, motion, outputs

@@ -9,7 +9,7 @@ import tomllib
 import numpy as np
 import pytest
 
-from wingwatch.daemon.codec import SensorFrame, decode_message, encode_sensor_frame
+from wingwatch.daemon.codec import decode_message
 from wingwatch.daemon.config import load_config
 from wingwatch.daemon.replaylog import KIND_WARNING, KIND_WATCH
 from wingwatch.daemon.watch.margin import MarginForecaster
@@ -87,24 +87,14 @@ def test_margin_forecast_hold_and_plan():
 
 def _scenario(tmp, seed, changes):
     from wingwatch.daemon.rig.scenario import scenario_dir, scenario_from_dict
-    from wingwatch.daemon.rig.source import VirtualRig
-    from wingwatch.daemon.service import record_frames
+    from wingwatch.daemon.rig.source import VirtualRig, write_rig_log
 
     doc = tomllib.loads((scenario_dir() / "stationary.toml").read_text())
     doc["scenario"].update({"duration_s": 70.0, "seed": seed, "name": "speed-step"})
     doc["motion"] = {"mean_deg": 5.0, "random": [{"rms_deg": 0.4, "band_hz": [0.05, 2.5],
                                                   "components": 64, "taper_s": 2.0}]}
     doc["events"] = changes
-    rig = VirtualRig(scenario_from_dict(doc))
-
-    def msgs():
-        for f in rig.frames():
-            fr = SensorFrame("rig", f.seq, f.t0, rig.rate_hz, rig.channels, f.samples)
-            yield (*encode_sensor_frame(fr), f.t0)
-
-    p = tmp / f"s{seed}.wwlog"
-    record_frames(msgs(), load_config(), p)
-    return p
+    return write_rig_log(VirtualRig(scenario_from_dict(doc)), tmp / f"s{seed}.wwlog")
 
 
 @pytest.fixture(scope="module")

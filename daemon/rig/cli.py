@@ -210,16 +210,9 @@ def _load_config(path: str | None, rate_hz: float):
 
 
 def _messages(frames: Iterator[RigFrame], rig: VirtualRig) -> Iterator[tuple[bytes, bytes, float]]:
-    from wingwatch.daemon.codec import SensorFrame, encode_sensor_frame
+    from wingwatch.daemon.rig.source import rig_messages
 
-    for f in frames:
-        if f.truth["lost"]:
-            continue
-        sf = SensorFrame(stream="rig", seq=f.seq, t0=f.t0, rate=rig.rate_hz, channels=rig.channels,
-                         samples=f.samples)
-        topic, payload = encode_sensor_frame(sf)
-        # receive time on the source clock (frame end): the log is bit-identical run to run
-        yield topic, payload, f.t0 + f.samples.shape[0] / rig.rate_hz
+    return rig_messages(rig, frames)
 
 
 def _tee(rig: VirtualRig, truth: TruthWriter | None) -> Iterator[RigFrame]:

@@ -51,7 +51,7 @@ from wingwatch.daemon.rig.scenario import (CHANNELS, Motion, Ramp, Scenario, loa
 from wingwatch.daemon.rig.sensors import SensorModel
 
 __all__ = ["RigFrame", "VirtualRig", "TRUTH_KEYS", "PARAM_HOLD_S", "ServoSpec", "PitchServo",
-           "CommandSchedule", "PitchCommand"]
+           "CommandSchedule", "PitchCommand", "rig_messages", "write_rig_log"]
 
 #: during a flow-speed or stiffness ramp the parameter is held constant over steps of this length
 PARAM_HOLD_S = 0.01
@@ -448,3 +448,26 @@ class VirtualRig:
                 truth["events"] = [e.as_dict() for e in sc.events
                                    if t_start <= e.t_s < t_start + F / rate]
                 yield RigFrame(seq=seq, t0=t_start, samples=samples[sl].copy(), truth=truth)
+
+
+def rig_messages(rig: VirtualRig, frames=None):
+    """The rig's frames as daemon messages ``(topic, payload, t_recv)``, with the receive time on
+    the source clock (frame end), so a log of them is bit-identical run to run."""
+    from wingwatch.daemon.codec import SensorFrame, encode_sensor_frame
+
+    for f in (rig.frames() if frames is None else frames):
+        if f.truth.get("lost"):
+            continue
+        sf = SensorFrame(stream="rig", seq=f.seq, t0=f.t0, rate=rig.rate_hz, channels=rig.channels,
+                         samples=f.samples)
+        topic, payload = encode_sensor_frame(sf)
+        yield topic, payload, f.t0 + f.samples.shape[0] / rig.rate_hz
+
+
+def write_rig_log(rig: VirtualRig, path, config=None):
+    """Run the rig into a replay log as the daemon would record it (no sockets); returns the path."""
+    from wingwatch.daemon.config import load_config
+    from wingwatch.daemon.service import record_frames
+
+    record_frames(rig_messages(rig), config or load_config(), path, start_unix=0.0, source="rig")
+    return path
