@@ -69,6 +69,7 @@ WATCH_DEFAULTS: dict[str, Any] = {
     "dwell_s": 2.0,
     "noise_ratio": 3.0,
     "baseline_s": 60.0,
+    "rearm_s": 30.0,
     "watch_rate_and_added_mass": 0.0,
 }
 
@@ -111,6 +112,7 @@ class WatchSettings:
     dwell_s: float
     noise_ratio: float
     baseline_s: float
+    rearm_s: float
     watch_rate_and_added_mass: float
 
     @classmethod
@@ -188,6 +190,9 @@ class Watcher:
         self.base_sd: np.ndarray | None = None
         self.base_acc: list[np.ndarray] = []
         self.base_offset: dict[str, float] = {}
+        self.base_t = 0.0
+        self.base_since: float | None = None  # set when the drift watch re-armed
+        self.alarm_run = np.zeros(self.n_coef_stats, dtype=int)
         self.mode_base: np.ndarray | None = None
         self.mode_sd: np.ndarray | None = None
         self.mode_acc: list[tuple[float, float]] = []
@@ -335,12 +340,20 @@ class Watcher:
         if w is not None and ref is not None and self.ident.accepted > 0:
             th = w["interpretable"][:3]  # rows: quasi-steady, rate, added mass
             if self.base is None:
+                if self.base_since is not None:  # re-baselining: let the old warnings clear
+                    for key, _ in COEFS:
+                        for o in OUTS:
+                            out += self.book.report(
+                                f"coefficient_drift:{key}.{o}", "coefficient_drift", f"{key}.{o}",
+                                None, 0.0, self.h, t, self.model_id,
+                                "Drift watch re-armed on the new level (advisory).")
                 self.base_acc.append(th.copy())
                 if len(self.base_acc) >= self.base_n:
                     arr = np.array(self.base_acc)
                     self.base = arr.mean(axis=0)
                     self.base_sd = arr.std(axis=0, ddof=1)
                     self.base_acc = []
+                    self.base_t = t
                     for i, (key, row) in enumerate(COEFS):
                         for j, o in enumerate(OUTS):
                             r0 = ref.coefficient(key)[j]
@@ -359,6 +372,8 @@ class Watcher:
                         self.last_z[f"{key}.{o}"] = float(zz)
                 alarms = self.cusum_coef.update(z)
                 stat = self.cusum_coef.statistic
+                since = ("the start of the run" if self.base_since is None
+                         else f"t = {self.base_t:.0f} s")
                 for i, (key, row) in enumerate(COEFS):
                     for j, o in enumerate(OUTS):
                         k = i * 2 + j
@@ -369,8 +384,17 @@ class Watcher:
                             f"coefficient_drift:{key}.{o}", "coefficient_drift", f"{key}.{o}",
                             level, float(stat[k]), self.h, t, self.model_id,
                             f"The {key.replace('_', '-')} {o} coefficient has moved {pct:+.1f} % "
-                            "from its value at the start of the run, beyond its tolerance "
-                            "(advisory).")
+                            f"from its value at {since}, beyond its tolerance (advisory).")
+                # Re-arm after a sustained change: once an alarm has held for watch.rearm_s, the
+                # new level becomes the baseline (measured afresh), so a later change raises its
+                # own alarm. The offset to the calibration stays in ww.watch baseline_offset.
+                self.alarm_run = np.where(alarms, self.alarm_run + 1, 0)
+                if s.rearm_s > 0 and np.any(self.alarm_run * self.ident.settings.slow_period_s
+                                            >= s.rearm_s):
+                    self.base = None
+                    self.base_since = t
+                    self.cusum_coef.reset()
+                    self.alarm_run = np.zeros(self.n_coef_stats, dtype=int)
         # mode drift and damping trend
         out += self._modes(t)
         return out
@@ -507,6 +531,8 @@ class Watcher:
             "mode_base": None if self.mode_base is None else self.mode_base.copy(),
             "mode_sd": None if self.mode_sd is None else self.mode_sd.copy(),
             "mode_acc": list(self.mode_acc), "mode_label": self.mode_label,
+            "base_t": self.base_t, "base_since": self.base_since,
+            "alarm_run": self.alarm_run.copy(),
             "margin_samples": self.margin_samples,
         }
 
@@ -542,4 +568,7 @@ class Watcher:
         self.mode_sd = None if st["mode_sd"] is None else np.array(st["mode_sd"], dtype=float)
         self.mode_acc = [tuple(x) for x in st["mode_acc"]]
         self.mode_label = st["mode_label"]
+        self.base_t = float(st["base_t"])
+        self.base_since = st["base_since"]
+        self.alarm_run = np.asarray(st["alarm_run"], dtype=int)
         self.margin_samples = int(st["margin_samples"])
