@@ -99,6 +99,28 @@ class MarginForecaster:
             self.gain = np.zeros((r, 2))  # no gain: open-loop simulation
             self.P = np.zeros((r, r))
 
+    def _forecast_maps(self) -> tuple[np.ndarray, np.ndarray]:
+        """``G[m] = C_curv Ah^m`` (m = 0..n) and ``g[m] = G[m] Bh`` for the forecast step
+        ``Ah = A^sub``, ``Bh = sum_(j<sub) A^j B``; built once per model."""
+        key = (id(self.A), id(self.C), self.n_steps, self.sub)
+        if getattr(self, "_maps_key", None) != key:
+            r = self.A.shape[0]
+            Ah = np.linalg.matrix_power(self.A, self.sub)
+            Bh = np.zeros(r)
+            M = np.eye(r)
+            for _ in range(self.sub):
+                Bh += M @ self.B[:, 0]
+                M = self.A @ M
+            G = np.empty((self.n_steps + 1, r))
+            row = self.C[1].copy()
+            for m in range(self.n_steps + 1):
+                G[m] = row
+                row = row @ Ah
+            self._maps = (G, G @ Bh)
+            self._maps_key = key
+            self._maps_hold = (self.A, self.C)  # keep the arrays alive so their ids stay theirs
+        return self._maps
+
     def update(self, a: np.ndarray, ad: np.ndarray, add: np.ndarray, dy: np.ndarray,
                ok: np.ndarray) -> None:
         """Run the filter over a block (deviations about the operating point)."""
@@ -144,30 +166,20 @@ class MarginForecaster:
             ad = np.zeros(n)
             add = np.zeros(n)
             source = "hold"
-        kap = np.empty(n)
-        var = np.empty(n)
         x = self.x.copy()
-        P = self.P.copy() if r else np.zeros((0, 0))
-        if r:
-            Ah = np.linalg.matrix_power(self.A, self.sub)
-            # input over a step of sub samples: sum_j A^j B (held rate)
-            acc = np.zeros(r)
-            M = np.eye(r)
-            for _ in range(self.sub):
-                acc += M @ self.B[:, 0]
-                M = self.A @ M
-            Bh = acc
         sigma_ad = math.sqrt(self.ad_sq / self.ad_n) if self.ad_n else 0.0
-        for k in range(n):
-            if r:
-                x = Ah @ x + Bh * ad[k]
-                P = Ah @ P @ Ah.T + np.outer(Bh, Bh) * sigma_ad ** 2
-                cx = float(self.C[1] @ x)
-                cpc = float(self.C[1] @ P @ self.C[1])
-            else:
-                cx, cpc = 0.0, 0.0
-            kap[k] = self.y0[1] + th[0, 1] * a[k] + th[1, 1] * ad[k] + th[2, 1] * add[k] + th[-1, 1] + cx
-            var[k] = cpc + self.r_var[1]  # state uncertainty through the model, plus residual
+        direct = self.y0[1] + th[0, 1] * a + th[1, 1] * ad + th[2, 1] * add + th[-1, 1]
+        if r:
+            G, g = self._forecast_maps()
+            # x_(k+1) = Ah^(k+1) x + sum_(j<=k) Ah^(k-j) Bh ad_j, seen through C (row 1):
+            cx = G[1:] @ x + np.convolve(ad, g[:n])[:n]
+            # P_(k+1) = Ah^(k+1) P Ah^(k+1)' + sigma^2 sum_(j<=k) Ah^j Bh Bh' Ah^j'
+            cpc = np.einsum("kr,rs,ks->k", G[1:], self.P, G[1:]) + sigma_ad ** 2 * np.cumsum(g[:n] ** 2)
+        else:
+            cx = np.zeros(n)
+            cpc = np.zeros(n)
+        kap = direct + cx
+        var = cpc + self.r_var[1]  # state uncertainty through the model, plus residual
         band = np.sqrt(var)
         upper = np.abs(kap) + 2.0 * band
         now = 1.0 - abs(self.last["kappa"]) / self.limit
