@@ -34,7 +34,7 @@ import zmq
 
 from wingwatch.daemon.codec import TOPICS, decode_message
 
-__all__ = ["ModelUpdate", "ModelFeed", "WarningFeed"]
+__all__ = ["ModelUpdate", "ModelFeed", "WarningFeed", "count_missed"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -94,6 +94,25 @@ class ModelUpdate:
         L = scipy.linalg.logm(M)
         L = np.real_if_close(L, tol=1e6) / self.dt
         return np.real(L[:n, :n]), np.real(L[:n, n:]), self.C
+
+
+def count_missed(last_seen: dict[str, int], kind: str, m: dict[str, Any]) -> int:
+    """Messages of ``kind`` that never arrived before ``m``, from the gap in ``pub_seq``.
+
+    ``last_seen`` (kind -> last pub_seq) is updated. A number at or below the last one seen is a
+    new publisher (the daemon restarted and numbers from 0 again): it becomes the baseline, so
+    later drops are counted at once.
+
+    >>> seen = {}
+    >>> [count_missed(seen, "model", {"pub_seq": s}) for s in (0, 1, 4, 0, 2)]
+    [0, 0, 2, 0, 1]
+    """
+    seq = m.get("pub_seq")
+    if not isinstance(seq, int):
+        return 0
+    last = last_seen.get(kind)
+    last_seen[kind] = seq
+    return seq - last - 1 if last is not None and seq > last + 1 else 0
 
 
 class _Feed:
@@ -216,15 +235,7 @@ class _Feed:
             return n
 
     def _count_missed(self, kind: str, m: dict[str, Any]) -> None:
-        seq = m.get("pub_seq")
-        if not isinstance(seq, int):
-            return
-        last = self._last_pub_seq.get(kind)
-        if last is not None and seq > last + 1:
-            self.missed += seq - last - 1
-        # A number at or below the last one seen is a new publisher (the daemon restarted and
-        # numbers from 0 again): it becomes the baseline, so later drops are counted at once.
-        self._last_pub_seq[kind] = seq
+        self.missed += count_missed(self._last_pub_seq, kind, m)
 
     def _on_message(self, kind: str, m: dict[str, Any], now: float) -> None:
         self._count_missed(kind, m)

@@ -289,15 +289,9 @@ class MonitorState:
             handler(msg, received, snapshot)
 
     def _count_missed(self, kind: str, m: dict[str, Any]) -> None:
-        # the same idea as clients/feed.py: per-kind pub_seq, a jump counts what never arrived
-        seq = m.get("pub_seq")
-        if not isinstance(seq, int):
-            return
-        last = self._last_pub_seq.get(kind)
-        if last is not None and seq > last + 1:
-            self.missed += seq - last - 1
-        if last is None or seq > last:
-            self._last_pub_seq[kind] = seq
+        from wingwatch.clients.feed import count_missed
+
+        self.missed += count_missed(self._last_pub_seq, kind, m)
 
     def _see_t(self, t: Any) -> None:
         if _finite(t) and (self.source_t is None or t > self.source_t):
