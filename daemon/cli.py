@@ -392,7 +392,8 @@ def _cmd_demo(args: argparse.Namespace) -> int:
         err_console.print(msg, markup=False)
 
     res = run_demo(duration_s=args.duration, headless=args.headless, start_s=args.start_s,
-                   speed=args.speed, config_path=args.config, say=say)
+                   speed=args.speed, config_path=args.config,
+                   controller=not args.no_controller, say=say)
     if args.json:
         sys.stdout.write(summary_json(res) + "\n")
     else:
@@ -524,12 +525,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=_cmd_calibrate)
 
-    p = sub.add_parser("demo", help="the whole system on the virtual rig (rig, daemon, monitor)",
-                       description="Run the virtual rig's campaign into the daemon with the terminal "
+    p = sub.add_parser("demo", help="the whole system on the virtual rig (rig, daemon, controller, "
+                                    "monitor)",
+                       description="Run the virtual rig's campaign into the daemon with the example "
+                                   "controller flying the rig in closed loop and the terminal "
                                    "monitor, all on loopback. " + ADVISORY_LINE)
     p.add_argument("--duration", type=float, metavar="S", help="stop after S seconds and print a "
                    "summary")
     p.add_argument("--headless", action="store_true", help="no monitor (for scripts and CI)")
+    p.add_argument("--no-controller", action="store_true", help="leave the example controller out: "
+                   "the rig flies the scenario's motion open loop")
     p.add_argument("--from", dest="start_s", type=float, metavar="S", help="join the campaign at "
                    "source time S (default: 20 s before its first scripted event)")
     p.add_argument("--speed", type=float, default=1.0, metavar="X", help="pace the rig at X times "

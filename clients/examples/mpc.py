@@ -79,8 +79,8 @@ from wingwatch.daemon.identify.transient import resample_realisation
 from wingwatch.daemon.rig.scenario import smooth_step
 from wingwatch.daemon.rig.source import CommandSchedule, RigFrame, ServoSpec, VirtualRig
 
-__all__ = ["ControlModel", "StepReference", "Move", "LiftTracker", "quasi_steady_command",
-           "fly", "main"]
+__all__ = ["ControlModel", "StepReference", "ModelLiftReference", "Move", "LiftTracker",
+           "quasi_steady_command", "fly", "main"]
 
 
 # ============================================================================ model
@@ -221,6 +221,100 @@ class StepReference:
         except ValueError:
             raise ValueError(f"--lift {text!r}: expected t:CL pairs separated by commas") from None
         return cls([p[0] for p in pairs], [p[1] for p in pairs], ramp_s)
+
+
+class ModelLiftReference:
+    """A lift reference: the lift that ``model`` gives along a prescribed pitch programme.
+
+    ``programme(t) -> (alpha, alpha_dot, alpha_ddot)`` (rad, rad/s, rad/s^2; vectorised in
+    ``t``), for instance a scenario's scripted motion. The lift is the model's whole output on a
+    grid ``t_k = t_start - warmup_s + k h``::
+
+        C_L[k]  = y_0 + bias + K_qs (alpha_k - alpha_0) + K_rate alpha_dot_k + K_am alpha_ddot_k
+                  + C_L x[k]
+        x[k+1]  = A_h x[k] + B_h (alpha_{k+1} - alpha_k) / h
+
+    with (A_h, B_h) the model's realisation carried to the step ``h`` (zero-order hold on the
+    mean pitch rate over a step, as :class:`LiftTracker` predicts). The transient starts at rest
+    ``warmup_s`` before ``t_start`` and has decayed into the programme's motion by then. A
+    tracker that follows this reference with the same model flies the programme itself; with
+    another model (a newer identification) it flies whatever angle gives that lift.
+
+    The grid is computed on demand, in time order, and only the last ``keep_s`` before the
+    newest query is kept (bounded memory); between grid points the lift is interpolated
+    linearly, and a time before the kept grid takes its first value.
+
+    >>> toy = ControlModel(dt=0.001, A=np.array([[0.9]]), B=np.array([0.0]), C=np.zeros((2, 1)),
+    ...                    k_qs=np.array([4.0, 10.0]), k_rate=np.array([0.5, 0.0]),
+    ...                    k_am=np.zeros(2), bias=np.zeros(2), alpha0=0.0, y0=np.zeros(2))
+    >>> ramp = lambda t: (0.1 * np.asarray(t), np.full(np.shape(t), 0.1), np.zeros(np.shape(t)))
+    >>> r = ModelLiftReference(toy, ramp, t_start=0.0)
+    >>> [round(float(v), 6) for v in r(np.array([1.0, 2.0]))]  # 4 (0.1 t) + 0.5 (0.1)
+    [0.45, 0.85]
+    """
+
+    def __init__(self, model: Any, programme: Callable[[np.ndarray], tuple], *, t_start: float,
+                 step_s: float = 0.005, warmup_s: float = 10.0, keep_s: float = 5.0) -> None:
+        m = ControlModel.of(model)
+        for name, v in (("step_s", step_s), ("keep_s", keep_s)):
+            if not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
+                raise ValueError(f"{name} must be a positive number of seconds")
+        if not (isinstance(warmup_s, (int, float)) and math.isfinite(warmup_s) and warmup_s >= 0):
+            raise ValueError("warmup_s must be a non-negative number of seconds")
+        if not (isinstance(t_start, (int, float)) and math.isfinite(t_start)):
+            raise ValueError("t_start must be a finite source time")
+        if not callable(programme):
+            raise ValueError("programme must be callable: t -> (alpha, alpha_dot, alpha_ddot)")
+        self.model = m
+        self.programme = programme
+        self.step_s = float(step_s)
+        self.keep_s = float(keep_s)
+        self.t_first = float(t_start) - float(warmup_s)
+        r = m.rank
+        if r:
+            Ah, Bh = resample_realisation(m.A, m.B.reshape(r, 1), m.dt, self.step_s)
+            self._Ah, self._Bh = Ah, Bh[:, 0]
+        else:
+            self._Ah, self._Bh = np.zeros((0, 0)), np.zeros(0)
+        self._x = np.zeros(r)
+        self._a_prev: float | None = None
+        self._k = 0  # index of the next grid point to compute
+        self._t = np.zeros(0)
+        self._r = np.zeros(0)
+
+    def _extend(self, t_need: float) -> None:
+        h, m = self.step_s, self.model
+        n = max(200, int(math.ceil((t_need - (self.t_first + self._k * h)) / h)) + 1)
+        tg = self.t_first + (self._k + np.arange(n)) * h
+        a, ad, add = (np.asarray(v, dtype=float) for v in self.programme(tg))
+        static = (m.y0[0] + m.bias[0] + m.k_qs[0] * (a - m.alpha0) + m.k_rate[0] * ad
+                  + m.k_am[0] * add)
+        out = np.empty(n)
+        x, Ah, Bh, cl = self._x, self._Ah, self._Bh, m.C[0]
+        a_prev = self._a_prev
+        for i in range(n):
+            if a_prev is not None:
+                x = Ah @ x + Bh * ((a[i] - a_prev) / h)  # the mean rate over the step
+            a_prev = float(a[i])
+            out[i] = static[i] + cl @ x
+        self._x, self._a_prev = x, a_prev
+        self._k += n
+        self._t = np.concatenate([self._t, tg])
+        self._r = np.concatenate([self._r, out])
+
+    def __call__(self, t: Any) -> np.ndarray:
+        t = np.asarray(t, dtype=float)
+        if t.size == 0:
+            return np.zeros(t.shape)
+        hi, lo = float(np.max(t)), float(np.min(t))
+        if not (math.isfinite(hi) and math.isfinite(lo)):
+            raise ValueError("reference times must be finite")
+        if self._t.size == 0 or hi > self._t[-1]:
+            self._extend(hi)
+        keep = np.searchsorted(self._t, lo - self.keep_s)
+        if keep > 0:  # bounded memory: forget what lies well before the query
+            self._t, self._r = self._t[keep:], self._r[keep:]
+        return np.interp(t, self._t, self._r)
 
 
 # ============================================================================ QP
