@@ -304,7 +304,7 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     t = Table(title=f"reference model from {args.log}", show_lines=False)
     t.add_column("coefficient")
     t.add_column("output")
-    t.add_column("least squares", justify="right")
+    t.add_column("whole manoeuvre", justify="right")
     t.add_column("± 1 sd", justify="right")
     t.add_column("point read", justify="right")
     names = {"quasi_steady": "quasi-steady /rad", "rate": "pitch rate /(rad/s)",

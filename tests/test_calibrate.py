@@ -93,13 +93,22 @@ def test_model_file_round_trip_and_refusals(shipped, tmp_path):
             load_model(bad)
 
 
-def test_rigid_plate_quasi_steady_column_is_thin_airfoil(tmp_path):
+def test_rigid_plate_columns_are_thin_airfoil_and_theodorsen(tmp_path):
     log = rig_log(tmp_path, "rigid", article={"n_modes": 0},
                   viscous={"low_re": False, "stall": False})
     res = calibrate(load_record(log), max_rank=6)
     # Thin-airfoil theory (Glauert): lift slope 2 pi per rad; issue tolerance 2 %.
     assert res.model.k_qs[0] == pytest.approx(2 * np.pi, rel=0.02)
     assert res.point_read["quasi_steady"][0] == pytest.approx(2 * np.pi, rel=0.02)
+    # Added mass: Theodorsen's non-circulatory lift for pitch about x = a b from mid-chord is
+    # C_L = pi b alpha_dot / U - pi a b^2 alpha_ddot / U^2 (T. Theodorsen, NACA Report 496, 1935;
+    # C_L on the chord 2 b). The rig pivots at the leading edge (a = -1): K_am = pi b^2 / U^2.
+    # Issue tolerance 5 %.
+    doc = tomllib.loads((scenario_dir() / "calibration.toml").read_text())
+    b, speed = 0.05, doc["fluid"]["speed_m_s"]  # semichord of the 0.1 m strip (docs/rig.md)
+    assert res.model.k_am[0] == pytest.approx(np.pi * b**2 / speed**2, rel=0.05)
+    # ... and the estimate's own one-sigma error is honest about how close it is
+    assert abs(res.model.k_am[0] - np.pi * b**2 / speed**2) < 4 * res.model.sd["added_mass"][0] + 0.01 * res.model.k_am[0]
     assert any("curvature" in n for n in res.notes)  # a rigid plate: no curvature response
 
 
@@ -108,8 +117,8 @@ def test_coefficients_repeat_within_their_uncertainty_across_seeds(tmp_path):
     for seed in range(10):
         log = rig_log(tmp_path, f"s{seed}", scenario={"seed": 100 + seed})
         res = calibrate(load_record(log), rank=8, max_rank=8)
-        vals.append(res.model.k_qs)
-        sds.append(res.model.sd["quasi_steady"])
+        vals.append(np.concatenate([res.model.k_qs, res.model.k_rate, res.model.k_am]))
+        sds.append(np.concatenate([res.model.sd[k] for k in ("quasi_steady", "rate", "added_mass")]))
         log.unlink()
     vals, sds = np.array(vals), np.array(sds)
     spread = vals.std(axis=0, ddof=1)

@@ -44,6 +44,8 @@ __all__ = [
     "decimate_mean",
     "resample_realisation",
     "fir_markov",
+    "JointEstimate",
+    "fir_markov_joint",
     "estimate_markov",
     "realise",
     "realise_transient",
@@ -215,6 +217,108 @@ def fir_markov(
         if chosen is not None:
             chosen.append(best[2])
     return out[:, :, None]
+
+
+#: grid of kernel-to-noise variance ratios for :func:`fir_markov_joint`, in units of
+#: 1 / (mean power of the prior-weighted regressors)
+GAMMAS = tuple(10.0 ** np.arange(-4.0, 6.01, 0.5))
+
+
+@dataclass(frozen=True, eq=False)
+class JointEstimate:
+    """Fixed-effect columns and a TC-regularised impulse response, estimated together."""
+
+    beta: np.ndarray  # (q, n_out): coefficients of the fixed-effect columns
+    beta_cov: np.ndarray  # (n_out, q, q): their covariance
+    markov: np.ndarray  # (L + 1, n_out, 1): markov[0] = 0 (the direct term is a fixed effect)
+    noise_var: np.ndarray  # (n_out,): residual variance at the decimated rate
+    hyper: list  # (decay, gamma) chosen per output
+    residual: np.ndarray  # (N - L, n_out): r less both parts, rows k = L .. N-1
+
+
+def fir_markov_joint(u: np.ndarray, F: np.ndarray, r: np.ndarray, n_lags: int) -> JointEstimate:
+    """Columns ``beta`` and Markov parameters ``h_1 .. h_L`` of
+    ``r(k) = F(k) beta + sum_{j>=1} h_j u(k-j) + e(k)``, estimated jointly.
+
+    ``F`` holds instantaneous regressors (here alpha, alpha_dot, alpha_ddot and a constant); the
+    impulse response gets the TC prior of :func:`fir_markov` (``h ~ N(0, c P)``), the columns a
+    flat prior. Why jointly: over one smooth manoeuvre a free impulse response of pitch rate can
+    mimic ``alpha_ddot`` (a derivative of its own input) and the direct rate term, so an
+    unregularised fit of columns and transient together cannot tell them apart, and reading the
+    columns first leaves the circulation lag inside them. With the prior, the data decide how
+    much of the response is an instantaneous ``alpha_ddot`` term and how much a smooth, decaying
+    lag. The hyperparameters (decay ``lam``, variance ratio ``gamma = c / s2``) maximise the
+    restricted (REML) likelihood, the columns integrated out (D. A. Harville, "Maximum
+    likelihood approaches to variance component estimation", J. American Statistical
+    Association 72, 1977); ``s2`` is profiled. With ``W = V L`` (``P = L L^T``),
+    ``S = I + gamma W W^T`` and ``M = I / gamma + W^T W``, everything is computed in the
+    ``L``-dimensional form (Woodbury; matrix determinant lemma)::
+
+        F^T S^-1 F = F^T F - (W^T F)^T M^-1 (W^T F),   log det S = L log gamma + log det M
+        -2 log L_R = (n - q) log s2 + log det S + log det(F^T S^-1 F)
+        beta = (F^T S^-1 F)^-1 F^T S^-1 r,   h = L M^-1 W^T (r - F beta),   cov(beta) = s2 (F^T S^-1 F)^-1
+
+    Rows ``k = L .. N-1`` are used, as in :func:`fir_markov`.
+    """
+    u = np.asarray(u, dtype=float).reshape(-1)
+    F = np.asarray(F, dtype=float)
+    r = np.asarray(r, dtype=float)
+    r = r[:, None] if r.ndim == 1 else r
+    n = u.shape[0]
+    if F.shape[0] != n or r.shape[0] != n:
+        raise ValueError("u, F and r must have the same number of samples")
+    rows = n - n_lags
+    q = F.shape[1]
+    if rows < 2 * (n_lags + q):
+        raise IdentificationError(
+            f"the record has {n} samples, too few for {n_lags} Markov parameters and {q} columns")
+    V = np.lib.stride_tricks.sliding_window_view(u, n_lags + 1)[:, ::-1][:, 1:]  # u(k-1) .. u(k-L)
+    Fr, R = F[n_lags:], r[n_lags:]
+    G, VF, VR = V.T @ V, V.T @ Fr, V.T @ R
+    FF, FR, RR = Fr.T @ Fr, Fr.T @ R, np.sum(R * R, axis=0)
+    n_out = R.shape[1]
+    best: list = [None] * n_out
+    for lam in DECAYS:
+        Lc = _tc_factor(n_lags, lam)
+        GW = Lc.T @ G @ Lc
+        WF, WR = Lc.T @ VF, Lc.T @ VR
+        base = max(float(np.trace(GW)) / n_lags, 1e-300)
+        for g in GAMMAS:
+            gamma = g / base
+            try:
+                cf = scipy.linalg.cho_factor(GW + np.eye(n_lags) / gamma)
+            except np.linalg.LinAlgError:
+                continue
+            MWF = scipy.linalg.cho_solve(cf, WF)
+            MWR = scipy.linalg.cho_solve(cf, WR)
+            AF = FF - WF.T @ MWF
+            try:
+                cA = scipy.linalg.cho_factor(AF)
+            except np.linalg.LinAlgError:
+                continue
+            logdet_S = n_lags * np.log(gamma) + 2.0 * np.sum(np.log(np.diag(cf[0])))
+            logdet_A = 2.0 * np.sum(np.log(np.diag(cA[0])))
+            for j in range(n_out):
+                bF = FR[:, j] - WF.T @ MWR[:, j]
+                beta = scipy.linalg.cho_solve(cA, bF)
+                quad = RR[j] - WR[:, j] @ MWR[:, j] - bF @ beta
+                s2 = max(quad, 1e-300) / (rows - q)
+                nll = (rows - q) * np.log(s2) + logdet_S + logdet_A
+                if best[j] is None or nll < best[j][0]:
+                    z = MWR[:, j] - MWF @ beta
+                    cov = s2 * scipy.linalg.cho_solve(cA, np.eye(q))
+                    best[j] = (nll, beta, Lc @ z, cov, s2, (lam, float(gamma)))
+    beta_all = np.column_stack([b[1] for b in best])
+    if any(b is None for b in best):  # pragma: no cover - the grid always holds a well-posed point
+        raise IdentificationError("no kernel hyperparameter gave a well-posed joint estimate; "
+                                  "the columns are collinear over this record")
+    markov = np.zeros((n_lags + 1, n_out, 1))
+    for j, b in enumerate(best):
+        markov[1:, j, 0] = b[2]
+    resid = R - Fr @ beta_all - V @ markov[1:, :, 0]
+    return JointEstimate(beta=beta_all, beta_cov=np.stack([b[3] for b in best]), markov=markov,
+                         noise_var=np.array([b[4] for b in best]),
+                         hyper=[list(b[5]) for b in best], residual=resid)
 
 
 @dataclass(frozen=True, eq=False)
