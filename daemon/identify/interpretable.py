@@ -80,9 +80,60 @@ def simulate_states(A, B, u, x0=None, chunk: int = 64) -> tuple[np.ndarray, np.n
     u = np.asarray(u, dtype=float).ravel()
     x = np.zeros(r) if x0 is None else np.array(x0, dtype=float).reshape(r)
     n = u.size
-    X = np.empty((n, r))
-    if n == 0:
-        return X, x
+    if n == 0 or r == 0:
+        return np.zeros((n, r)), x
+    L = int(min(max(chunk, 1), n))
+    powers, H, T = _lifted(A, B, L)
+    nb = -(-n // L)
+    U = np.zeros(nb * L)
+    U[:n] = u
+    U = U.reshape(nb, L)
+    # Block scan: the state at each block start, x_(b+1) = A^L x_b + H u_b (one r x r product
+    # per block), then every sample of every block at once: x(bL + k) = A^k x_b + T_k u_b.
+    HU = U @ H.T  # (nb, r)
+    AL = powers[L]
+    starts = np.empty((nb + 1, r))
+    starts[0] = x
+    for b in range(nb):
+        starts[b + 1] = AL @ starts[b] + HU[b]
+    X = starts[:nb] @ powers[:L].reshape(L * r, r).T  # (nb, L r): A^k x_b for every k
+    X = (X + U @ T.T).reshape(nb * L, r)[:n]
+    m = n - (nb - 1) * L  # samples in the last block
+    if m == L:
+        x_end = starts[nb]
+    else:
+        x_end = powers[m] @ starts[nb - 1] + H[:, L - m:] @ U[nb - 1, :m]
+    return X, x_end
+
+
+_LIFT_CACHE: dict[tuple, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+
+
+def _lifted(A: np.ndarray, B: np.ndarray, L: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``powers[k] = A^k`` (k = 0..L), ``H[:, j] = A^(L-1-j) B`` and the block Toeplitz map
+    ``T`` ((L r) x L: row ``k r + i`` gives state i at sample k from the block's inputs), cached
+    by the bytes of (A, B) and L: the identifier and the watcher run the same few models on
+    blocks of one length, so the matrices are built once per model, not once per block."""
+    key = (A.tobytes(), B.tobytes(), A.shape[0], L)
+    hit = _LIFT_CACHE.get(key)
+    if hit is not None:
+        return hit
+    r = A.shape[0]
+    powers = np.empty((L + 1, r, r))
+    powers[0] = np.eye(r)
+    for k in range(1, L + 1):
+        powers[k] = A @ powers[k - 1]
+    h = powers[:L] @ B  # h[k] = A^k B, shape (L, r)
+    lag = np.arange(L)[:, None] - np.arange(L)[None, :] - 1  # k - 1 - j
+    toep = np.where((lag >= 0)[:, :, None], h[np.clip(lag, 0, None)], 0.0)  # (L, L, r)
+    T = toep.transpose(0, 2, 1).reshape(L * r, L)
+    H = h[::-1].T.copy()  # (r, L)
+    for arr in (powers, H, T):
+        arr.flags.writeable = False
+    if len(_LIFT_CACHE) >= 64:  # bounded: drop the oldest entry
+        _LIFT_CACHE.pop(next(iter(_LIFT_CACHE)))
+    _LIFT_CACHE[key] = (powers, H, T)
+    return powers, H, T
     L = int(min(max(chunk, 1), n))
     powers = np.empty((L + 1, r, r))
     powers[0] = np.eye(r)
