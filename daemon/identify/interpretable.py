@@ -30,6 +30,7 @@ from wingwatch.daemon.errors import IdentificationError
 __all__ = [
     "InterpretableModel",
     "simulate_states",
+    "block_end_state",
     "regressor",
     "regressor_names",
     "fit_interpretable",
@@ -106,6 +107,32 @@ def simulate_states(A, B, u, x0=None, chunk: int = 64) -> tuple[np.ndarray, np.n
     return X, x_end
 
 
+def block_end_state(A, B, U, x0) -> np.ndarray:
+    """State after a block of ``x(k+1) = A x(k) + B u(k)`` with several inputs.
+
+    ``B`` is ``(r, m)``, ``U`` is ``(n, m)``; returns ``A^n x0 + sum_j A^(n-1-j) B u(j)`` from
+    the cached lifted maps of each input column (no loop over samples).
+
+    Examples
+    --------
+    >>> block_end_state([[0.5]], [[1.0, 2.0]], [[1.0, 0.0], [0.0, 1.0]], [4.0]).tolist()
+    [3.5]
+    """
+    A = np.atleast_2d(np.asarray(A, dtype=float))
+    B = np.asarray(B, dtype=float).reshape(A.shape[0], -1)
+    U = np.asarray(U, dtype=float).reshape(-1, B.shape[1])
+    n = U.shape[0]
+    x = np.asarray(x0, dtype=float).reshape(A.shape[0])
+    if n == 0:
+        return x.copy()
+    out = None
+    for c in range(B.shape[1]):
+        powers, H, _ = _lifted(A, np.ascontiguousarray(B[:, c]), n)
+        term = H @ U[:, c]
+        out = powers[n] @ x + term if out is None else out + term
+    return out
+
+
 _LIFT_CACHE: dict[tuple, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
 
 
@@ -130,7 +157,7 @@ def _lifted(A: np.ndarray, B: np.ndarray, L: int) -> tuple[np.ndarray, np.ndarra
     H = h[::-1].T.copy()  # (r, L)
     for arr in (powers, H, T):
         arr.flags.writeable = False
-    if len(_LIFT_CACHE) >= 64:  # bounded: drop the oldest entry
+    if len(_LIFT_CACHE) >= 24:  # bounded (an entry is up to about 1 MB): drop the oldest
         _LIFT_CACHE.pop(next(iter(_LIFT_CACHE)))
     _LIFT_CACHE[key] = (powers, H, T)
     return powers, H, T

@@ -99,6 +99,18 @@ class MarginForecaster:
             self.gain = np.zeros((r, 2))  # no gain: open-loop simulation
             self.P = np.zeros((r, r))
 
+    def _closed_loop(self) -> tuple[np.ndarray, np.ndarray]:
+        """``F = A (I - L C)`` and ``G = [A L, B]`` of the filter on fully measured blocks."""
+        key = (id(self.A), id(self.B), id(self.C), id(self.gain))
+        if getattr(self, "_cl_key", None) != key:
+            r = self.A.shape[0]
+            F = self.A @ (np.eye(r) - self.gain @ self.C)
+            G = np.column_stack([self.A @ self.gain, self.B[:, 0]])
+            self._cl = (F, G)
+            self._cl_key = key
+            self._cl_hold = (self.A, self.B, self.C, self.gain)  # ids stay theirs while held
+        return self._cl
+
     def _forecast_maps(self) -> tuple[np.ndarray, np.ndarray]:
         """``G[m] = C_curv Ah^m`` (m = 0..n) and ``g[m] = G[m] Bh`` for the forecast step
         ``Ah = A^sub``, ``Bh = sum_(j<sub) A^j B``; built once per model."""
@@ -129,8 +141,17 @@ class MarginForecaster:
         x = self.x
         direct = np.outer(a, th[0]) + np.outer(ad, th[1]) + np.outer(add, th[2]) + th[-1]
         r = A.shape[0]
-        for k in range(a.size):
-            if r:
+        if r and ok.all():
+            # Every sample measured: with the steady-state gain the filter is time-invariant,
+            # x+ = A (I - L C) x + A L (dy - direct) + B ad, so the state after the block is
+            # F^n x + sum over the three inputs of their lifted maps (same as the loop below).
+            from wingwatch.daemon.identify.interpretable import block_end_state
+
+            F, G = self._closed_loop()
+            w = np.column_stack([dy - direct, ad])
+            x = block_end_state(F, G, w, x)
+        elif r:
+            for k in range(a.size):
                 if ok[k]:
                     innov = dy[k] - (C @ x + direct[k])
                     x = x + L @ innov  # measurement update
