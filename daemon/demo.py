@@ -301,7 +301,9 @@ class _DemoController(threading.Thread):
     carry back) than it would save on 2 cores.
 
     Every control period it takes the newest validated model the feed holds (ids recorded),
-    plans from the next control instant ``lead_s`` ahead of the rig's clock, sends the first
+    plans from the next control instant ``lead_s`` of wall time ahead of the rig's clock (so
+    ``lead_s * speed`` of source time: a GIL stall of a few tens of ms does not make a command
+    late at any ``--speed``), sends the first
     move as a command for that instant and the plan to the daemon, and posts its predicted angle
     to the rig's :class:`_FollowCheck`. If the feed goes quiet it keeps the model it has (a
     model that passed the gate stays valid; the controller is never told otherwise).
@@ -335,6 +337,7 @@ class _DemoController(threading.Thread):
         self.models_received: Any = deque(maxlen=200)  # ids, in arrival order (the newest 200)
         self.n_models = 0
         self.models_refused: dict[str, str] = {}  # id -> why the controller could not use it
+        self.n_refused = 0
         self.model_in_use = self.reference.model_id
         self.commands_sent = 0
         self.plans_sent = 0
@@ -420,7 +423,7 @@ class _DemoController(threading.Thread):
         self._wait("waiting for the daemon to take plans", lambda: plans.wait_ready(0.01), feed,
                    5.0)
         motion = scripted_motion(rig.sc)
-        period, lead = self.period_s, self.lead_s
+        period, lead = self.period_s, self.lead_s * max(1.0, rig.speed)  # source time
         t0 = period * math.ceil((rig.source_time() + lead) / period)  # the first control instant
         reference = ModelLiftReference(self.reference, motion.evaluate, t_start=t0)
         lo, hi = (math.radians(b) for b in self.ALPHA_BOUNDS_DEG)
@@ -468,7 +471,9 @@ class _DemoController(threading.Thread):
         try:
             tracker.set_model(m)
         except (ValueError, TypeError, ArithmeticError, WingwatchError) as exc:
-            self.models_refused[m.model_id] = str(exc)
+            if len(self.models_refused) < 50:  # bounded: the first 50 say enough
+                self.models_refused[m.model_id] = str(exc)
+            self.n_refused += 1
             return
         self.model_in_use = m.model_id
 
@@ -485,12 +490,13 @@ class _DemoController(threading.Thread):
                 "stopped_cleanly": not self.is_alive(), "cpu_s": self.cpu_s,
                 "models_received": list(self.models_received),
                 "models_received_count": self.n_models,
-                "models_refused": dict(self.models_refused), "model_in_use": self.model_in_use,
+                "models_refused": dict(self.models_refused),
+                "models_refused_count": self.n_refused, "model_in_use": self.model_in_use,
                 "commands_sent": self.commands_sent, "late_commands": self.late,
                 "plans_sent": self.plans_sent, "moves": dict(self.moves),
                 "resyncs": self.resyncs, "feed_lost_events": self.feed_lost,
                 "curvature_limit_per_m": self.limit, "period_s": self.period_s,
-                "lead_s": self.lead_s, "step_ms": step,
+                "lead_wall_s": self.lead_s, "step_ms": step,
                 "error": None if self.error is None else str(self.error)}
 
 
@@ -509,10 +515,11 @@ def run_demo(*, duration_s: float | None = None, headless: bool = False,
     demo_dir = Path(cfg.recorder.directory) / "demo"
     model = ensure_reference(demo_dir, cfg, say)
     stop = threading.Event()
-    ctx = zmq.Context() if controller else None
     endpoint = f"inproc://wingwatch-demo-commands-{id(stop):x}" if controller else None
     rig = _RigPublisher(cfg, scenario, start_s, lead_s, speed, stop, say,
-                        command_endpoint=endpoint, context=ctx)
+                        command_endpoint=endpoint)
+    ctx = zmq.Context() if controller else None  # shared by the rig's listener and the controller
+    rig.context = ctx
     ctl = _DemoController(cfg, model, rig, endpoint, ctx, stop, say) if controller else None
     daemon = Daemon(cfg, reference=model)
     dthread = threading.Thread(target=daemon.run, name="daemon", daemon=True)
