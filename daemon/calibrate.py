@@ -45,10 +45,9 @@ from wingwatch.daemon.condition import ChannelMap
 from wingwatch.daemon.config import Config, config_from_recorded
 from wingwatch.daemon.errors import FrameRejected, IdentificationError
 from wingwatch.daemon.identify.differentiate import differentiate, lag_of, noise_gain, savgol_kernels
-from wingwatch.daemon.identify.era import choose_rank, era
+from wingwatch.daemon.identify.era import choose_rank
 from wingwatch.daemon.identify.interpretable import regressor, simulate_states
-from wingwatch.daemon.identify.transient import (MarkovEstimate, decimate_mean, fir_markov_joint,
-                                                 realise)
+from wingwatch.daemon.identify.transient import MarkovEstimate, estimate_markov_joint, realise
 from wingwatch.daemon.modelfile import COEFFICIENT_KEYS, OUTPUT_KEYS, ReferenceModel
 from wingwatch.daemon.version import __version__
 
@@ -337,18 +336,14 @@ def joint_columns(rec: Record, seg: Segments, *, decimate: int, markov_s: float,
     a = rec.alpha - seg.alpha0
     dy = rec.y - seg.bias
     F = np.column_stack([a, rec.alpha_dot, rec.alpha_ddot])
-    n_lags = max(int(round(markov_s * rec.rate_hz / decimate)), min_lags)
     try:
-        je = fir_markov_joint(decimate_mean(rec.alpha_dot, decimate), decimate_mean(F, decimate),
-                              decimate_mean(dy, decimate), n_lags)
+        est, je = estimate_markov_joint(rec.alpha_dot, F, dy, rec.rate_hz, decimate=decimate,
+                                        markov_s=markov_s, min_lags=min_lags)
     except IdentificationError as exc:
         raise CalibrationError(f"{rec.path}: {exc}; use a longer record or a richer "
                                "manoeuvre.") from None
     infl = _lag1_inflation(je.residual)
     sd = np.sqrt(np.maximum(np.diagonal(je.beta_cov, axis1=1, axis2=2).T * infl, 0.0))
-    rows, cols = n_lags // 2, n_lags - n_lags // 2
-    est = MarkovEstimate(markov=je.markov, dt=1.0 / rec.rate_hz, decimate=decimate,
-                         hankel_sv=era(je.markov, 1, rows, cols).hankel_sv)
     return Columns(beta=je.beta, sd=sd, markov=est, hyper=je.hyper)
 
 

@@ -62,6 +62,7 @@ IDENTIFY_DEFAULTS: dict[str, Any] = {
     "block_s": 0.1,
     "half_life_s": 30.0,
     "gate": 0.1,
+    "ci_batch_s": 2.0,
     "slow_period_s": 2.0,
     "slow_window_s": 20.0,
     "decimate": 20,
@@ -84,6 +85,7 @@ class IdentifySettings:
     block_s: float
     half_life_s: float
     gate: float
+    ci_batch_s: float
     slow_period_s: float
     slow_window_s: float
     decimate: int
@@ -125,7 +127,7 @@ class IdentifySettings:
                 finite_ok = math.isfinite(v) if isinstance(v, (int, float)) else False
                 if k == "half_life_s" and isinstance(v, float) and v == math.inf:
                     finite_ok = True  # inf: no forgetting (batch least squares, for checks)
-                zero_ok = k == "gate"  # 0 turns the windup gate off
+                zero_ok = k in ("gate", "ci_batch_s")  # 0 turns the gate / robust intervals off
                 if (isinstance(v, bool) or not isinstance(v, (int, float)) or not finite_ok
                         or v < 0 or (v == 0 and not zero_ok)):
                     raise ConfigError(f"{where}: key {key} must be a positive number.")
@@ -320,7 +322,8 @@ class OnlineIdentifier:
         # transient-state columns are small numbers, so even 1e-3 would bias C measurably), and
         # models are published only after the slow layer has a full window of data.
         return RecursiveLeastSquares(p, 2, half_life=s.half_life_s, rate=self.rate, gate=s.gate,
-                                     prior_precision=0.0, theta0=theta0)
+                                     prior_precision=0.0, theta0=theta0,
+                                     ci_batch=int(round(s.ci_batch_s * self.rate)))
 
     @property
     def rank(self) -> int:

@@ -102,13 +102,14 @@ class RLSSnapshot:
 class _FrameCache:
     """Weights and a work buffer for one frame length (rebuilt when the length changes)."""
 
-    __slots__ = ("n", "sw", "wq", "sum_w", "sum_w2", "decay", "root_decay", "decay2",
+    __slots__ = ("n", "w", "sw", "wq", "sum_w", "sum_w2", "decay", "root_decay", "decay2",
                  "decay_q", "work", "upper")
 
     def __init__(self, n: int, lam: float, lam_q: float, q: int) -> None:
         ages = np.arange(n - 1, -1, -1, dtype=float)  # n-1-i
         w = lam**ages  # w_i = lam^(n-1-i)
         self.n = n
+        self.w = w[:, None]
         self.sw = np.sqrt(w)[:, None]
         self.wq = (lam_q**ages)[:, None]
         self.sum_w = float(w.sum())
@@ -148,6 +149,9 @@ class RecursiveLeastSquares:
         the estimate then stays at ``Theta_0`` until the data determine it.
     theta0 : array_like or None
         Prior estimate, shape ``(p, m)``; zeros by default.
+    ci_batch : int
+        Samples per batch of the autocorrelation-robust standard errors (see :attr:`stderr`);
+        0 (default) gives the white-noise standard errors only.
 
     Examples
     --------
@@ -171,7 +175,11 @@ class RecursiveLeastSquares:
         excitation_half_life: float | None = None,
         prior_precision: float = 1e-6,
         theta0=None,
+        ci_batch: int = 0,
     ) -> None:
+        if int(ci_batch) != ci_batch or ci_batch < 0:
+            raise ValueError(f"ci_batch must be a whole number >= 0, got {ci_batch}")
+        self.ci_batch = int(ci_batch)
         if int(n_regressors) != n_regressors or n_regressors < 1:
             raise ValueError(f"n_regressors must be a positive integer, got {n_regressors}")
         if int(n_outputs) != n_outputs or n_outputs < 1:
@@ -225,6 +233,13 @@ class RecursiveLeastSquares:
         self._n2 = 0.0
         self._n_samples = 0
         self._solved = self.prior_precision > 0.0
+        self._g = np.zeros((p, m))  # weighted score sum(w_k phi_k e_k) of the open batch
+        self._S = np.zeros((m, p, p))  # sum over closed batches of W_b g_b g_b^T, per output
+        self._b_count = 0  # samples in the open batch
+        self._b1 = 0.0  # sum of batch weights W_b (aged like S)
+        self._b2 = 0.0  # sum of W_b^2, for the effective number of batches
+        self._infl = np.ones((p, m))  # variance inflation per coefficient (>= 1), held in holds
+        self._gated = False  # the last frame's forgetting was gated (a weakly excited direction)
 
     def state_dict(self) -> dict:
         """Learned state as plain arrays and numbers (copies); see :meth:`load_state_dict`."""
@@ -238,6 +253,13 @@ class RecursiveLeastSquares:
             "n2": self._n2,
             "n_samples": self._n_samples,
             "solved": self._solved,
+            "g": self._g.copy(),
+            "S": self._S.copy(),
+            "b_count": self._b_count,
+            "b1": self._b1,
+            "b2": self._b2,
+            "infl": self._infl.copy(),
+            "gated": self._gated,
         }
 
     def load_state_dict(self, state: dict) -> None:
@@ -258,6 +280,14 @@ class RecursiveLeastSquares:
         self._n2 = float(state["n2"])
         self._n_samples = int(state["n_samples"])
         self._solved = bool(state["solved"])
+        # states saved before the robust standard errors existed restore with none accumulated
+        self._g = np.array(state.get("g", np.zeros((p, m))), dtype=float).reshape(p, m)
+        self._S = np.array(state.get("S", np.zeros((m, p, p))), dtype=float).reshape(m, p, p)
+        self._b_count = int(state.get("b_count", 0))
+        self._b1 = float(state.get("b1", 0.0))
+        self._b2 = float(state.get("b2", 0.0))
+        self._infl = np.array(state.get("infl", np.ones((p, m))), dtype=float).reshape(p, m)
+        self._gated = bool(state.get("gated", False))
 
     # ---------------------------------------------------------------- update
     def _frame(self, n: int) -> _FrameCache:
@@ -318,13 +348,48 @@ class RecursiveLeastSquares:
         self._n2 = fc.decay2 * self._n2 + fc.sum_w2  # n2 <- lam^2n n2 + sum w_i^2
         self._n_samples += n
         self._solve()
+        if self.ci_batch:  # scores from the a-posteriori residuals (the a-priori ones of a fresh
+            # estimator are far from its residuals once it has data)
+            self._batch_scores(phi, y - phi @ self._theta, fc)
         return errors
+
+    def _batch_scores(self, phi: np.ndarray, errors: np.ndarray, fc: _FrameCache) -> None:
+        """Accumulate the batch-means estimate of the score covariance (see :attr:`stderr`)."""
+        self._g *= fc.decay
+        self._g += phi.T @ (errors * fc.w)
+        self._S *= fc.decay2
+        self._b1 *= fc.decay2
+        self._b2 *= fc.decay2 * fc.decay2
+        self._b_count += phi.shape[0]
+        if self._b_count < self.ci_batch:
+            return
+        g = self._g
+        self._S += np.einsum("im,jm->mij", g, g)
+        self._b1 += 1.0
+        self._b2 += 1.0
+        self._g = np.zeros_like(g)
+        self._b_count = 0
+        if self._gated or self.effective_batches < 5:
+            return  # a weakly excited direction: keep the inflation learned while excited
+        P = self.covariance
+        white = np.diag(P)[:, None] * self.residual_variance[None, :] * (self._n2 / self._n1)
+        robust = np.einsum("ij,mjk,ik->im", P, self._S, P)  # diag(P S_m P) per output
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = robust / white
+        ok = np.isfinite(ratio)
+        self._infl[ok] = np.maximum(ratio[ok], 1.0)
+
+    @property
+    def effective_batches(self) -> float:
+        """Effective number of closed batches in the forgetting window (Kish: b1^2 / b2)."""
+        return self._b1 * self._b1 / self._b2 if self._b2 > 0 else 0.0
 
     def _forget(self, fc: _FrameCache, G: np.ndarray) -> None:
         """Write the forgotten factor into ``G[:q]`` (exponential, or gated by excitation)."""
         p = self.n_regressors
         q = p + self.n_outputs
         F = self._F
+        self._gated = False
         if self.gate > 0.0:
             Rf = F[:p, :p]
             Z = self._Q - (self.gate * self._nu_ss) * (Rf.T @ Rf)  # Q - gate nu_ss R
@@ -337,6 +402,7 @@ class RecursiveLeastSquares:
                     if info3 != 0:  # pragma: no cover - LAPACK convergence failure
                         raise IdentificationError(f"eigen-decomposition failed ({info3})")
                     g = np.clip(nu / (self.gate * self._nu_ss), 0.0, 1.0)  # gate per direction
+                    self._gated = True
                     d = (1.0 - fc.decay) * g  # information fraction forgotten along v_j
                     c = 1.0 - np.sqrt(1.0 - d)  # (1 - c_j)^2 = 1 - d_j
                     top = F[:p]
@@ -392,6 +458,10 @@ class RecursiveLeastSquares:
         F[:p, :p] = F[:p, :p] @ Tf.T  # R_f' = R_f T_f^T, z unchanged
         self._F = np.triu(np.linalg.qr(F, mode="r"))
         self._Q = Tf @ self._Q @ Tf.T  # Q' = T_f Q T_f^T
+        self._g = Tf @ self._g  # scores: phi' = T_f phi
+        self._S = np.einsum("ij,mjk,lk->mil", Tf, self._S, Tf)  # S' = T_f S T_f^T
+        worst = self._infl[idx].max(axis=0)  # the new state rows mix the old ones
+        self._infl[idx] = worst
         self._theta = np.linalg.solve(Tf.T, self._theta)  # Theta' = T_f^-T Theta
         self._solve()
 
@@ -442,16 +512,36 @@ class RecursiveLeastSquares:
 
     @property
     def stderr(self) -> np.ndarray:
-        """Standard errors of ``Theta``, shape ``(p, m)``: ``sqrt(diag(P) sigma^2 n2 / n1)``."""
+        """Standard errors of ``Theta``, shape ``(p, m)``.
+
+        White-noise form ``sqrt(diag(P) sigma^2 n2 / n1)``. With ``ci_batch`` the residuals may
+        be autocorrelated (they are, at a kHz sample rate: unmodelled slow dynamics and coloured
+        sensor noise), and the variance is ``diag(P S P)`` instead, ``S`` the sum over batches of
+        ``ci_batch`` samples of the outer products of the weighted score
+        ``g_b = sum_(k in b) w_k phi_k e_k`` (``e_k`` the residuals after each frame's update): the sandwich
+        estimator with non-overlapping batches, a batch-means form of the
+        autocorrelation-consistent covariance (W. K. Newey and K. D. West, Econometrica 55(3),
+        1987). It is kept as a ratio to the white-noise variance per coefficient, at least 1,
+        updated at every batch end once 5 effective batches exist, and held while the windup
+        gate is active, so a hold neither narrows nor widens the intervals by itself.
+        """
         var = self.residual_variance
         ratio = self._n2 / self._n1 if self._n1 > 0 else np.nan
-        return np.sqrt(np.diag(self.covariance)[:, None] * var[None, :] * ratio)
+        white = np.diag(self.covariance)[:, None] * var[None, :] * ratio
+        return np.sqrt(white * self._infl)
+
+    @property
+    def inflation(self) -> np.ndarray:
+        """Variance inflation per coefficient from the batch-means estimate (1 = white)."""
+        return self._infl.copy()
 
     def intervals(self, level: float = 0.95) -> tuple[np.ndarray, np.ndarray]:
         """Two-sided confidence intervals ``(lower, upper)`` on ``Theta`` at ``level``."""
         if not 0.0 < level < 1.0:
             raise ValueError(f"level must be in (0, 1), got {level}")
         dof = self.effective_window - self.n_regressors
+        if self.ci_batch and np.any(self._infl > 1.0):
+            dof = min(dof, self.effective_batches - 1.0)  # the robust variance's own dof
         from scipy.stats import t as student_t  # imported here: scipy.stats is slow to load
 
         half = self.stderr * (student_t.ppf(0.5 + level / 2.0, dof) if dof > 0 else np.nan)

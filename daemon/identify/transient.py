@@ -47,6 +47,7 @@ __all__ = [
     "JointEstimate",
     "fir_markov_joint",
     "estimate_markov",
+    "estimate_markov_joint",
     "realise",
     "realise_transient",
 ]
@@ -232,11 +233,12 @@ class JointEstimate:
     beta_cov: np.ndarray  # (n_out, q, q): their covariance
     markov: np.ndarray  # (L + 1, n_out, 1): markov[0] = 0 (the direct term is a fixed effect)
     noise_var: np.ndarray  # (n_out,): residual variance at the decimated rate
-    hyper: list  # (decay, gamma) chosen per output
+    hyper: list  # (decay index, gamma index) chosen per output, for a warm start
     residual: np.ndarray  # (N - L, n_out): r less both parts, rows k = L .. N-1
 
 
-def fir_markov_joint(u: np.ndarray, F: np.ndarray, r: np.ndarray, n_lags: int) -> JointEstimate:
+def fir_markov_joint(u: np.ndarray, F: np.ndarray, r: np.ndarray, n_lags: int, *,
+                     hyper: list | None = None) -> JointEstimate:
     """Columns ``beta`` and Markov parameters ``h_1 .. h_L`` of
     ``r(k) = F(k) beta + sum_{j>=1} h_j u(k-j) + e(k)``, estimated jointly.
 
@@ -258,7 +260,8 @@ def fir_markov_joint(u: np.ndarray, F: np.ndarray, r: np.ndarray, n_lags: int) -
         -2 log L_R = (n - q) log s2 + log det S + log det(F^T S^-1 F)
         beta = (F^T S^-1 F)^-1 F^T S^-1 r,   h = L M^-1 W^T (r - F beta),   cov(beta) = s2 (F^T S^-1 F)^-1
 
-    Rows ``k = L .. N-1`` are used, as in :func:`fir_markov`.
+    Rows ``k = L .. N-1`` are used, as in :func:`fir_markov`. ``hyper`` (the ``hyper`` of an
+    earlier estimate) limits the search to the grid neighbours of the earlier choice.
     """
     u = np.asarray(u, dtype=float).reshape(-1)
     F = np.asarray(F, dtype=float)
@@ -278,13 +281,19 @@ def fir_markov_joint(u: np.ndarray, F: np.ndarray, r: np.ndarray, n_lags: int) -
     FF, FR, RR = Fr.T @ Fr, Fr.T @ R, np.sum(R * R, axis=0)
     n_out = R.shape[1]
     best: list = [None] * n_out
-    for lam in DECAYS:
+    if hyper is not None and len(hyper) == n_out:
+        d_set = sorted({d for h in hyper for d in range(max(h[0] - 1, 0), min(h[0] + 2, len(DECAYS)))})
+        g_set = sorted({g for h in hyper for g in range(max(h[1] - 1, 0), min(h[1] + 2, len(GAMMAS)))})
+    else:
+        d_set, g_set = list(range(len(DECAYS))), list(range(len(GAMMAS)))
+    for di in d_set:
+        lam = DECAYS[di]
         Lc = _tc_factor(n_lags, lam)
         GW = Lc.T @ G @ Lc
         WF, WR = Lc.T @ VF, Lc.T @ VR
         base = max(float(np.trace(GW)) / n_lags, 1e-300)
-        for g in GAMMAS:
-            gamma = g / base
+        for gi in g_set:
+            gamma = GAMMAS[gi] / base
             try:
                 cf = scipy.linalg.cho_factor(GW + np.eye(n_lags) / gamma)
             except np.linalg.LinAlgError:
@@ -307,7 +316,7 @@ def fir_markov_joint(u: np.ndarray, F: np.ndarray, r: np.ndarray, n_lags: int) -
                 if best[j] is None or nll < best[j][0]:
                     z = MWR[:, j] - MWF @ beta
                     cov = s2 * scipy.linalg.cho_solve(cA, np.eye(q))
-                    best[j] = (nll, beta, Lc @ z, cov, s2, (lam, float(gamma)))
+                    best[j] = (nll, beta, Lc @ z, cov, s2, (di, gi))
     beta_all = np.column_stack([b[1] for b in best])
     if any(b is None for b in best):  # pragma: no cover - the grid always holds a well-posed point
         raise IdentificationError("no kernel hyperparameter gave a well-posed joint estimate; "
@@ -369,6 +378,30 @@ def estimate_markov(u: np.ndarray, r: np.ndarray, rate_hz: float, *, decimate: i
     sv = era(mk, 1, rows, cols).hankel_sv
     return MarkovEstimate(markov=mk, dt=dt, decimate=decimate, hankel_sv=sv,
                           hyper=[list(c) for c in chosen])
+
+
+def estimate_markov_joint(u: np.ndarray, F: np.ndarray, y: np.ndarray, rate_hz: float, *,
+                          decimate: int = 20, markov_s: float = 5.0, min_lags: int = 34,
+                          hyper: list | None = None) -> tuple[MarkovEstimate, JointEstimate]:
+    """Decimate and fit columns ``F`` and ``markov_s`` seconds of Markov parameters of ``u``
+    together (:func:`fir_markov_joint`); the Markov part ready for :func:`realise`."""
+    if decimate < 1:
+        raise ValueError("decimate must be at least 1")
+    u = np.asarray(u, dtype=float).reshape(-1)
+    F = np.asarray(F, dtype=float)
+    y = np.asarray(y, dtype=float)
+    y = y[:, None] if y.ndim == 1 else y
+    if not (np.all(np.isfinite(u)) and np.all(np.isfinite(F)) and np.all(np.isfinite(y))):
+        raise IdentificationError("the window holds non-finite samples")
+    dt = 1.0 / rate_hz
+    n_lags = max(int(round(markov_s / (dt * decimate))), min_lags)
+    je = fir_markov_joint(decimate_mean(u, decimate), decimate_mean(F, decimate),
+                          decimate_mean(y, decimate), n_lags, hyper=hyper)
+    rows, cols = n_lags // 2, n_lags - n_lags // 2
+    sv = era(je.markov, 1, rows, cols).hankel_sv
+    est = MarkovEstimate(markov=je.markov, dt=dt, decimate=decimate, hankel_sv=sv,
+                         hyper=[list(h) for h in je.hyper])
+    return est, je
 
 
 def realise(est: MarkovEstimate, rank: int | None = None, *, max_rank: int = 16,
