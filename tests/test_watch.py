@@ -1,8 +1,11 @@
-"""Watchers: warning lifecycle, flutter margin, curvature forecast, and a flow-speed change on
-the virtual rig detected by the stale-model and drift watchers without earlier false alarms."""
+"""Watchers: warning lifecycle, flutter margin, curvature forecast and margin warnings, a
+flow-speed change on the virtual rig detected by the stale-model and drift watchers without
+earlier false alarms, a curvature-gauge zero drift told from a stiffness change under motion, and
+the watch stage's explicit state."""
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import tomllib
 
@@ -158,3 +161,195 @@ def test_controller_plan_reaches_the_margin_forecast_and_is_recorded(tmp_path):
     assert kinds.count(rl.KIND_PLAN) == 1 and kinds.count(rl.KIND_REJECTED) == 1
     res = replay_log(tmp_path / "p.wwlog")  # the plan replays at its place in the stream
     assert res.session.pipeline.plans == 1
+
+
+# ------------------------------------------------------------------------- rig scenarios
+def _rig_run(tmp, reference, name, seed, duration, events, motion=None, watch=None, truth=False):
+    """A purpose-made rig scenario at the 5 deg operating point, recorded and replayed through
+    the daemon's pipeline; returns (warnings, watch messages, pipeline, true root curvature)."""
+    from wingwatch.daemon.codec import SensorFrame, encode_sensor_frame
+    from wingwatch.daemon.modelfile import load_model
+    from wingwatch.daemon.replay import replay_log
+    from wingwatch.daemon.rig.scenario import scenario_dir, scenario_from_dict
+    from wingwatch.daemon.rig.source import VirtualRig
+    from wingwatch.daemon.service import make_pipeline, record_frames
+
+    doc = tomllib.loads((scenario_dir() / "stationary.toml").read_text())
+    doc["scenario"].update({"duration_s": duration, "seed": seed, "name": name})
+    doc["motion"] = motion or {"mean_deg": 5.0, "random": [
+        {"rms_deg": 0.4, "band_hz": [0.05, 2.5], "components": 64, "taper_s": 2.0}]}
+    doc["events"] = events
+    rig = VirtualRig(scenario_from_dict(doc))
+    kappa, times = [], []
+
+    def msgs():
+        for f in rig.frames():
+            if truth:
+                kappa.append(np.asarray(f.truth["kappa_root"]))
+                times.append(np.asarray(f.truth["t"]))
+            fr = SensorFrame("rig", f.seq, f.t0, rig.rate_hz, rig.channels, f.samples)
+            yield (*encode_sensor_frame(fr), f.t0)
+
+    cfg = load_config()
+    log = tmp / f"{name}.wwlog"
+    record_frames(msgs(), cfg, log, start_unix=0.0, source="rig")
+    if watch:
+        cfg = dataclasses.replace(cfg, watch={**cfg.watch, **watch})
+    ref = load_model(reference)
+    res = replay_log(log, config=cfg, pipeline_factory=lambda c: make_pipeline(c, ref))
+    warns = [decode_message(o.payload) for o in res.outputs if o.kind == KIND_WARNING]
+    watches = [decode_message(o.payload) for o in res.outputs if o.kind == KIND_WATCH]
+    k = np.abs(np.concatenate(kappa)) if kappa else np.zeros(0)
+    tk = np.concatenate(times) if times else np.zeros(0)
+    return warns, watches, res.session.pipeline, (tk, k)
+
+
+# Gauge zero drift against a stiffness change: the same seeded run (5 deg, 0.4 deg rms random
+# pitch), the same event time, one with the root gauge's zero drifting and one with the plate
+# 15 % softer. The first validated model comes at about 22 s; the first baseline starts
+# watch.rearm_s (30 s) later and lasts 40 s here (shortened from 60 s to keep the test short),
+# so the watch is armed by about 92 s and the event comes at 100 s.
+T_EVENT = 100.0
+DISCRIMINATION = {"seed": 7, "duration": 125.0, "watch": {"baseline_s": 40.0}}
+# 0.3 microstrain/s: a fast thermal zero drift (rig units; the campaign's is 0.08); on the
+# 0.6 mm plate that is 2 x 0.3e-6 / 0.6e-3 = 1e-3 1/m per second of curvature (kappa = 2 eps / t,
+# beam theory), about 0.1 % of the operating curvature per second.
+GAUGE_EVENT = {"t_s": T_EVENT, "kind": "gauge-drift", "channel": "strain_root", "rate_ue_per_s": 0.3}
+STIFF_EVENT = {"t_s": T_EVENT, "kind": "stiffness", "factor": 0.85, "ramp_s": 2.0}
+STRUCTURAL = ("coefficient_drift", "mode_drift", "damping_trend")
+
+
+def _zero_drift(w):
+    return w["warning_kind"] == "sensor_health" and w["quantity"].endswith(".zero")
+
+
+def test_gauge_zero_drift_is_sensor_health_not_structural(tmp_path, reference):
+    warns, watches, _, _ = _rig_run(tmp_path, reference, "gauge", events=[GAUGE_EVENT],
+                                    **DISCRIMINATION)
+    raised = [w for w in warns if w["event"] == "raised"]
+    zero = [w for w in raised if _zero_drift(w)]
+    # the zero drift is reported as a sensor fault of the curvature gauge, after it starts
+    assert zero and zero[0]["quantity"] == "strain_root.zero", warns
+    assert all(w["t"] >= T_EVENT for w in zero)
+    assert zero[0]["level"] == "advisory" and "advisory" in zero[0]["message"].lower()
+    # ... and never as a structural change: no coefficient or mode drift warning of any kind
+    assert not [w for w in warns if w["warning_kind"] in STRUCTURAL], warns
+    # the watch state names the gauge and shows the curvature level moving upward (the rig's
+    # drift is positive microstrain, so positive curvature), with the witnesses quiet
+    last = watches[-1]
+    assert last["sensors"]["strain_root"]["state"] == "zero_drift"
+    assert last["drift"]["zero_shift.curvature"]["z"] > 0
+    assert last["drift"]["zero_shift.curvature"]["cusum"] > last["drift"]["zero_shift.curvature"]["threshold"]
+
+
+def test_stiffness_step_is_structural_not_gauge(tmp_path, reference):
+    warns, _, _, _ = _rig_run(tmp_path, reference, "stiffness", events=[STIFF_EVENT],
+                              **DISCRIMINATION)
+    raised = [w for w in warns if w["event"] == "raised"]
+    drift = [w for w in raised if w["warning_kind"] == "coefficient_drift"]
+    assert not [w for w in raised if w["warning_kind"] in STRUCTURAL + ("stale_model",)
+                and w["t"] < T_EVENT], warns  # no false alarm before the step
+    assert drift, warns
+    assert drift[0]["t"] - T_EVENT <= 10.0  # issue 7 target: the stiffness step within 10 s
+    # the curvature quasi-steady column moves (a softer plate bends more per radian)
+    assert any(w["quantity"] == "quasi_steady.curvature" for w in drift)
+    assert not [w for w in warns if _zero_drift(w)], warns  # not taken for a gauge fault
+
+
+def test_watch_state_round_trips_exactly_and_reset_equals_fresh(tmp_path, reference):
+    """state_dict / load_state_dict through the checkpoint's wire form in the middle of a gauge
+    drift (zero-shift CUSUM and witness sums live), then both pipelines continue identically."""
+    import msgpack
+
+    from wingwatch.daemon import replaylog as rl
+    from wingwatch.daemon.codec import _from_wire, _to_wire
+    from wingwatch.daemon.modelfile import load_model
+    from wingwatch.daemon.pipeline import Session
+    from wingwatch.daemon.rig.scenario import scenario_dir, scenario_from_dict
+    from wingwatch.daemon.rig.source import VirtualRig, write_rig_log
+    from wingwatch.daemon.service import make_pipeline
+    from wingwatch.daemon.watch.stage import Watcher
+
+    doc = tomllib.loads((scenario_dir() / "stationary.toml").read_text())
+    doc["scenario"].update({"duration_s": 118.0, "seed": 7, "name": "gauge-state"})
+    doc["motion"] = {"mean_deg": 5.0, "random": [{"rms_deg": 0.4, "band_hz": [0.05, 2.5],
+                                                  "components": 64, "taper_s": 2.0}]}
+    doc["events"] = [GAUGE_EVENT]
+    log = write_rig_log(VirtualRig(scenario_from_dict(doc)), tmp_path / "g.wwlog")
+    cfg = load_config()
+    cfg = dataclasses.replace(cfg, watch={**cfg.watch, "baseline_s": 40.0})
+    ref = load_model(reference)
+    records = [r for r in rl.LogReader.open(log) if r.kind in (rl.KIND_INBOUND, rl.KIND_REJECTED)]
+    cut = int(113.0 * 100)  # 10-sample frames at 1 kHz: frame index = 100 x time
+    out_a: list[bytes] = []
+    s1 = Session(make_pipeline(cfg, ref), sink=lambda t, p: out_a.append(p))
+    for rec in records[:cut]:
+        s1.replay_record(rec)
+    w1 = s1.pipeline.stages[-1]
+    assert isinstance(w1, Watcher)
+    assert w1.base is not None and w1.cusum_zero.statistic[0] > 0  # the new state is live
+
+    def packed(state):
+        return msgpack.packb(_to_wire(state), use_bin_type=True)
+
+    wire = _from_wire(msgpack.unpackb(packed(s1.pipeline.state_dict()), raw=False))
+    p2 = make_pipeline(cfg, ref)
+    p2.load_state_dict(wire)
+    assert packed(p2.stages[-1].state_dict()) == packed(w1.state_dict())
+    out_b: list[bytes] = []
+    s2 = Session(p2, sink=lambda t, p: out_b.append(p))
+    s2.pub_seq = dict(s1.pub_seq)
+    n_before = len(out_a)
+    for rec in records[cut:]:
+        s1.replay_record(rec)
+        s2.replay_record(rec)
+    assert len(out_a) - n_before == len(out_b) > 10
+    assert out_a[n_before:] == out_b  # byte for byte
+    w2 = p2.stages[-1]
+    assert packed(w2.state_dict()) == packed(w1.state_dict())
+    assert w1.gauge_suspect  # the run went through the gauge verdict after the cut
+    # reset equals a fresh stage on the same identifier
+    w1.reset()
+    assert packed(w1.state_dict()) == packed(Watcher(cfg, w1.ident).state_dict())
+
+
+# ------------------------------------------------------------------------- margin warnings
+def test_no_margin_warning_below_70_percent_of_the_limit(tmp_path, reference):
+    # A manoeuvre at the operating point: random pitching (0.2 deg rms) and a 0.9 deg pitch-up
+    # held for 9 s. The rig's true root curvature stays below 70 % of the limit throughout, so
+    # the curvature-margin watcher (advisory below 25 % predicted margin, i.e. a two-sigma upper
+    # edge above 75 % of the limit) must stay silent. (70 %: the issue's check; the 25 % advisory
+    # margin is the configured default, watch.margin_advisory.)
+    motion = {"mean_deg": 5.0,
+              "random": [{"rms_deg": 0.2, "band_hz": [0.1, 2.5], "components": 48, "taper_s": 2.0}],
+              "ramps": [{"start_s": 30.0, "duration_s": 1.0, "delta_deg": 0.9},
+                        {"start_s": 40.0, "duration_s": 1.0, "delta_deg": -0.9}]}
+    warns, watches, _, (_, kappa) = _rig_run(tmp_path, reference, "manoeuvre", 3, 60.0, [],
+                                             motion=motion, truth=True)
+    limit = load_config().outputs.curvature.limit_per_m
+    assert kappa.max() < 0.70 * limit  # the scenario is what the test claims
+    assert kappa.max() > 0.60 * limit  # ... and a real manoeuvre, not a hold at 47 %
+    assert not [w for w in warns if w["warning_kind"] == "curvature_margin"], warns
+    # the forecast saw the manoeuvre: its smallest predicted margin fell well below the margin
+    # at the operating point, yet stayed above the advisory margin
+    pm = [m["margin"]["predicted_min"] for m in watches if m["t"] > 3.0]
+    assert 0.25 < min(pm) < np.median(pm) - 0.1
+
+
+def test_creep_toward_the_limit_warns_at_least_1_s_ahead(tmp_path, reference):
+    # A creep of 0.25 deg/s from 5 deg carries the true root curvature across the limit some
+    # 20 s later; the first margin warning must come at least 1 s before the rig's true
+    # crossing (issue 7's check).
+    events = [{"t_s": 10.0, "kind": "pitch-creep", "rate_deg_per_s": 0.25, "duration_s": 30.0}]
+    motion = {"mean_deg": 5.0,
+              "random": [{"rms_deg": 0.2, "band_hz": [0.1, 2.5], "components": 48, "taper_s": 2.0}]}
+    warns, _, _, (tk, kappa) = _rig_run(tmp_path, reference, "creep", 5, 45.0, events,
+                                        motion=motion, truth=True)
+    limit = load_config().outputs.curvature.limit_per_m
+    over = np.flatnonzero(kappa >= limit)
+    assert over.size  # the creep does reach the limit
+    t_cross = float(tk[over[0]])
+    margin = [w for w in warns if w["warning_kind"] == "curvature_margin" and w["event"] == "raised"]
+    assert margin, warns
+    assert margin[0]["t"] <= t_cross - 1.0
+    assert all("advisory" in w["message"].lower() for w in margin)

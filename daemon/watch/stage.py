@@ -3,14 +3,16 @@
 It runs after the identification stage and reads its explicit state (the model in service,
 the window estimate of every slow update, the aligned samples of every block). Detectors:
 
-- **Coefficient drift**: at every slow update, for each interpretable coefficient (quasi-steady,
-  rate, added mass; lift and curvature) the window estimate's standardised deviation from the
-  reference, ``z = (theta_w - theta_ref) / sqrt(se_w^2 + sd_ref^2 + (tol theta_ref)^2)``, into a
-  two-sided CUSUM (Page 1954). Window estimates of successive slow updates use disjoint data,
-  so ``z`` is close to independent from one evaluation to the next, as the CUSUM design
-  assumes. The tolerance term is the modelling band within which a coefficient counts as
-  unchanged (operating-point nonlinearity; ``watch.coefficient_tolerance``). Thresholds come
-  from the target false-alarm rate through Siegmund's approximation of the average run
+- **Coefficient drift**: at every slow update, the interpretable columns (quasi-steady, rate,
+  added mass; lift and curvature) are estimated over the data since the previous slow update on
+  a transient basis frozen when the baseline starts (:mod:`.basis`: the identifier's realisation
+  in service changes from one slow update to the next, and with it the split between the
+  quasi-steady column and the slow states). Each estimate's standardised deviation from the
+  baseline, ``z = (theta_w - theta_0) / sqrt(s_0^2 + (tol theta_0)^2)``, feeds a two-sided
+  CUSUM (Page 1954). Windows use disjoint data, so ``z`` is close to independent from one
+  evaluation to the next, as the CUSUM design assumes. The tolerance term is the modelling band
+  within which a coefficient counts as unchanged (``watch.coefficient_tolerance``). Thresholds
+  come from the target false-alarm rate through Siegmund's approximation of the average run
   length (see :mod:`.cusum` and docs/watch.md): at most ``watch.false_alarm_per_hours`` hours
   between false alarms over all statistics together (Bonferroni split).
 - **Mode drift**: the tracked mode nearest the reference's dominant mode, frequency and damping
@@ -26,9 +28,14 @@ the window estimate of every slow update, the aligned samples of every block). D
   ``watch.stale_ratio``.
 - **Sensor health**: per strain/force/pressure channel, a stuck channel (no variation at all
   over a window where it normally varies), a noise-level change (window noise against the
-  first minute's), and zero drift of the curvature gauge: a curvature residual bias that moves
-  while alpha holds and lift still fits. A suspected sensor fault suspends the structural drift
-  statistics of the output it affects, so it is not reported as structural drift.
+  first minute's), and zero drift of the curvature gauge, told from a structural change under
+  motion: a zero shift moves the curvature *level* at the operating point (the level row of the
+  frozen-basis estimate) and nothing else, while a stiffness or flow change also moves the
+  curvature's gain to alpha or the lift. A CUSUM on the curvature level finds the shift; three
+  witnesses (curvature gain, lift level, lift gain), averaged since the CUSUM's change point,
+  decide whether anything else moved (Bonferroni-corrected two-sided z tests). A suspected zero
+  drift suspends the curvature and modal drift statistics, so it is not reported as structural
+  drift, and raises a sensor-health advisory.
 - **Curvature margin**: :class:`.margin.MarginForecaster` every block.
 
 Every warning carries the advisory caution and defers to the facility's safety procedures.
@@ -41,6 +48,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from scipy.special import ndtri
 
 from wingwatch.daemon.condition import ConditionedBlock
 from wingwatch.daemon.config import Config
@@ -48,6 +56,7 @@ from wingwatch.daemon.errors import ConfigError
 from wingwatch.daemon.identifier import OnlineIdentifier
 from wingwatch.daemon.identify.modes import modal_parameters
 from wingwatch.daemon.pipeline import Output
+from wingwatch.daemon.watch.basis import FrozenBasisWindow, level_only, solve_window
 from wingwatch.daemon.watch.cusum import Cusum, threshold_for_arl
 from wingwatch.daemon.watch.margin import MarginForecaster
 from wingwatch.daemon.watch.warnings import WarningBook
@@ -71,10 +80,22 @@ WATCH_DEFAULTS: dict[str, Any] = {
     "baseline_s": 60.0,
     "rearm_s": 30.0,
     "watch_rate_and_added_mass": 0.0,
+    "zero_shift_tolerance": 0.0005,
+    "zero_shift_witness_alpha": 0.001,
 }
 
 COEFS = (("quasi_steady", 0), ("rate", 1), ("added_mass", 2))
 OUTS = ("lift", "curvature")
+LEVEL = 3  # the level row of the frozen-basis estimate (basis.ROWS)
+#: (row, output) of the witnesses of a structural change: curvature gain, lift level, lift gain
+WITNESSES = ((0, 1), (LEVEL, 0), (0, 0))
+
+
+def _unpack(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Window fits as stored (one flat row each: columns 4 x 2, the level row of G, the level
+    row of b) back into ``theta`` (n, 4, 2), ``G[level]`` (n, 4) and ``b[level]`` (n, 2)."""
+    rows = np.atleast_2d(rows)
+    return rows[:, :8].reshape(-1, 4, 2), rows[:, 8:12], rows[:, 12:14]
 
 
 def flutter_margin(b1: float, w1: float, b2: float, w2: float) -> float:
@@ -114,6 +135,8 @@ class WatchSettings:
     baseline_s: float
     rearm_s: float
     watch_rate_and_added_mass: float
+    zero_shift_tolerance: float
+    zero_shift_witness_alpha: float
 
     @classmethod
     def from_config(cls, config: Config) -> "WatchSettings":
@@ -128,6 +151,9 @@ class WatchSettings:
         for k in ("period_s", "false_alarm_per_hours", "margin_horizon_s", "stale_ratio"):
             if raw[k] <= 0:
                 raise ConfigError(f"{config.source}: key 'watch.{k}' must be greater than zero.")
+        if not 0 < raw["zero_shift_witness_alpha"] < 1:
+            raise ConfigError(f"{config.source}: key 'watch.zero_shift_witness_alpha' must lie "
+                              "between 0 and 1 (a test size).")
         if not raw["margin_caution"] < raw["margin_advisory"] < 1:
             raise ConfigError(f"{config.source}: keys 'watch.margin_caution' < "
                               "'watch.margin_advisory' < 1 must hold.")
@@ -149,9 +175,14 @@ class Watcher:
         self.n_coef_stats = len(COEFS) * len(OUTS)
         self.n_mode_stats = 2
         # Bonferroni: each statistic's in-control ARL is the number of its evaluations in the
-        # target interval times the number of statistics (Siegmund's ARL, see cusum.py).
-        total = self.n_coef_stats + self.n_mode_stats
+        # target interval times the number of statistics (Siegmund's ARL, see cusum.py); the
+        # curvature zero-shift statistic is one of them.
+        total = self.n_coef_stats + self.n_mode_stats + 1
         self.h = threshold_for_arl(evals * total, s.cusum_k)
+        # Witnesses of a structural change (curvature gain, lift level, lift gain): each is a
+        # two-sided z test at size alpha / 3 (Bonferroni over the three).
+        self.witness_z = float(ndtri(1.0 - s.zero_shift_witness_alpha / (2.0 * len(WITNESSES))))
+        self.gauge_channel = config.outputs.curvature.strain
         self.base_n = max(5, int(round(s.baseline_s / slow_s)))
         ref = identifier.reference
         self.ref_mode = None
@@ -181,16 +212,27 @@ class Watcher:
         self.noise_acc: list[float] = []
         self.noise_blocks = 0
         self.sensors: dict[str, dict[str, str]] = {}
+        self.basis = FrozenBasisWindow()  # the drift watchers' window estimates
+        self.basis_alt = FrozenBasisWindow()  # the other candidate basis, during a baseline
+        self.base_acc_alt: list[np.ndarray] = []
+        self.win_a = [0.0, 0]  # sum and count of alpha deviations in the current window
+        self.cusum_zero = Cusum(1, s.cusum_k, self.h)
+        # per CUSUM side (up, down): witness sums and counts since that side was last zero
+        self.zero_wsum = np.zeros((2, len(WITNESSES)))
+        self.zero_wn = np.zeros((2, len(WITNESSES)), dtype=int)
         self.gauge_suspect = False
-        self.hold_bias: list[tuple[float, float, float]] = []  # (t, curvature bias, lift bias)
+        self.zero_info: dict[str, Any] = {}
         self.damp_hist: list[tuple[float, float]] = []  # (dynamic pressure, damping)
         self.plan: tuple[float, float, np.ndarray] | None = None
         self.q_recent = float("nan")
         self.base: np.ndarray | None = None  # coefficient baseline (start of the run)
         self.base_sd: np.ndarray | None = None
         self.base_acc: list[np.ndarray] = []
+        self.base_level: np.ndarray | None = None  # residual-mean levels (lift, curvature)
+        self.base_level_sd: np.ndarray | None = None
         self.base_offset: dict[str, float] = {}
         self.base_t = 0.0
+        self.first_model_t: float | None = None  # sample time of the first validated model
         self.base_since: float | None = None  # set when the drift watch re-armed
         self.alarm_run = np.zeros(self.n_coef_stats, dtype=int)
         self.mode_base: np.ndarray | None = None
@@ -213,6 +255,7 @@ class Watcher:
         out: list[Output] = []
         lb = self.ident.last_block
         if lb is None or lb.get("_seen"):
+            self._restart_on(block)
             return out  # the identifier is still gathering this block
         lb["_seen"] = True
         q = block.dynamic_pressure
@@ -222,6 +265,11 @@ class Watcher:
         self._track_model()
         self.margin.update(lb["a"], lb["ad"], lb["add"], lb["dy"], lb["ok"])
         self._reference_residual(lb)
+        for basis in (self.basis, self.basis_alt):
+            basis.add(lb["a"], lb["ad"], lb["add"], lb["dy"], lb["ok"])
+        ok = lb["ok"]
+        self.win_a[0] += float(np.sum(lb["a"][ok]))
+        self.win_a[1] += int(np.count_nonzero(ok))
         self._sensor_health(block, lb)
         if self.ident.candidate_seq != self.seen_seq:
             self.seen_seq = self.ident.candidate_seq
@@ -231,7 +279,17 @@ class Watcher:
         if self.since_watch >= self.period_n:
             self.since_watch = 0
             out.append(self._watch_message(t_end))
+        self._restart_on(block)
         return out
+
+    def _restart_on(self, block: ConditionedBlock) -> None:
+        """After a gap or a source restart the identifier's transient states start from rest
+        (the samples before it were processed first); the watchers' own simulations follow."""
+        if block.discontinuity:
+            self.basis.restart()
+            self.basis_alt.restart()
+            if self.ref_x is not None:
+                self.ref_x = np.zeros_like(self.ref_x)
 
     def _track_model(self) -> None:
         ident = self.ident
@@ -253,10 +311,6 @@ class Watcher:
         e = (lb["dy"] - pred)[lb["ok"]]
         self.ref_sq += np.sum(e * e, axis=0)
         self.ref_n += e.shape[0]
-        if e.shape[0] and abs(float(np.sqrt(np.mean(lb["ad"][lb["ok"]] ** 2)))) < math.radians(0.2):
-            # alpha holds: the residual biases tell a gauge zero drift from a structural change
-            self.hold_bias.append((float(lb["t"][-1]), float(e[:, 1].mean()), float(e[:, 0].mean())))
-            self.hold_bias = self.hold_bias[-600:]
 
     def _sensor_health(self, block: ConditionedBlock, lb: dict[str, Any]) -> None:
         names = self.config.conditioning_stream.channels
@@ -288,13 +342,15 @@ class Watcher:
         s = self.settings
         ident = self.ident
         ref = ident.reference
-        w = ident.last_window
         # stale model: reference residual against its level at the start
         if self.ref_n:
             rms = np.sqrt(self.ref_sq / self.ref_n)
             if self.ref_base is None:
                 self.ref_base = np.maximum(rms, 1e-9)
-            ratio = float(np.max(rms / self.ref_base))
+            ratios = rms / self.ref_base
+            # A suspected gauge zero drift is reported as such; the lift alone then says
+            # whether the controller's model still fits.
+            ratio = float(ratios[0] if self.gauge_suspect else np.max(ratios))
             self.stale = {"statistic": ratio, "threshold": s.stale_ratio}
             self.ref_sq[:] = 0.0
             self.ref_n = 0
@@ -303,101 +359,241 @@ class Watcher:
                                     level, ratio, s.stale_ratio, t, self.model_id,
                                     f"The controller's model no longer fits: its prediction error "
                                     f"is {ratio:.1f}x its level at the start (advisory).")
-        # gauge zero drift: curvature residual bias moving while alpha holds and lift fits
-        self.gauge_suspect = False
-        if len(self.hold_bias) >= 20:
-            tb = np.array(self.hold_bias[-200:])
-            span = tb[-1, 0] - tb[0, 0]
-            if span > 5.0:
-                slope_k = np.polyfit(tb[:, 0], tb[:, 1], 1)[0] * span
-                slope_l = np.polyfit(tb[:, 0], tb[:, 2], 1)[0] * span
-                scale_k = max(abs(self.ident.y0[1]) if self.ident.y0 is not None else 0.0, 1e-3)
-                scale_l = max(abs(self.ident.y0[0]) if self.ident.y0 is not None else 0.0, 1e-3)
-                drift_k = abs(slope_k) / scale_k
-                if drift_k > 0.03 and abs(slope_l) / scale_l < 0.01:
-                    self.gauge_suspect = True
-                    self.sensors["strain gauge"] = {
-                        "state": "zero_drift",
-                        "detail": f"curvature residual moved {100 * drift_k:.1f} % while alpha held"}
-        out += self.book.report("sensor_health:zero_drift", "sensor_health", "curvature_gauge_zero",
-                                "advisory" if self.gauge_suspect else None,
-                                float(self.gauge_suspect), 1.0, t, self.model_id,
-                                "The curvature gauge's zero seems to drift while alpha holds: a "
-                                "sensor fault, not a structural change; check the strain gauge "
-                                "(advisory).")
+        fit = self._window_fit(self.basis)
+        fit_alt = self._window_fit(self.basis_alt) if self.basis_alt.frozen else None
+        out += self._baseline_and_drift(t, fit, fit_alt)
         for name, st in self.sensors.items():
-            if name == "strain gauge":
-                continue
             bad = st["state"] in ("stuck", "noisy")
             out += self.book.report(f"sensor_health:{name}", "sensor_health", name,
                                     "advisory" if bad else None, 1.0 if bad else 0.0, 1.0, t,
                                     self.model_id,
                                     f"Sensor {st['detail'] or name}; check the channel (advisory).")
+        # mode drift and damping trend
+        out += self._modes(t)
+        return out
+
+    def _window_fit(self, basis: FrozenBasisWindow) -> np.ndarray | None:
+        """This window on a frozen basis, as one flat row (see :func:`_unpack`): the columns
+        (rows gain, rate, added mass, level; NaN when the window had too little motion to
+        identify them, alpha holding) and the level row of the normal equations, from which
+        the residual-mean level under any fixed columns follows (:func:`.basis.level_only`)."""
+        G, b, n, rate_rms = basis.take()
+        if not basis.frozen or n < 16:
+            return None
+        gains_ok = rate_rms >= math.radians(self.ident.settings.min_rate_rms_deg_s)
+        theta = solve_window(G, b) if gains_ok else None
+        if theta is None:
+            theta = np.full((4, 2), np.nan)
+        return np.concatenate([theta.ravel(), G[LEVEL], b[LEVEL]])
+
+    def _freeze_basis(self) -> None:
+        """Fix the transient basis of the drift watchers' window estimates for a baseline.
+
+        Two candidates run through the baseline: the reference's realisation (a clean, settled
+        calibration, though it may no longer describe the dynamics after a change) and the one
+        the identifier holds now (fitted to the present data, though it may be immature at the
+        start of a run). The one whose baseline scatter inflates the statistics least is kept
+        (:meth:`_choose_basis`).
+        """
+        ident = self.ident
+        ref = ident.reference
+        a_c = self.win_a[0] / self.win_a[1] if self.win_a[1] else 0.0
+        r = ident.rank
+        own = (ident.A, ident.B.reshape(-1), ident.rls.theta[3:3 + r].T, a_c, ident.x)
+        if ref is not None:
+            # the reference's states have been simulated on the same data all along (ref_x)
+            self.basis.freeze(ref.A, ref.B.reshape(-1), ref.C, a_c, self.ref_x)
+            self.basis_alt.freeze(*own)
+        else:
+            self.basis.freeze(*own)
+            self.basis_alt.reset()
+        self.base_acc = []
+        self.base_acc_alt = []
+
+    def _baseline_of(self, rows: np.ndarray) -> dict[str, np.ndarray]:
+        """Baseline statistics from its windows: mean and scatter of the columns, and of the
+        residual-mean levels with the columns held at their baseline mean."""
+        theta, G3, b3 = _unpack(rows)
+        mean, sd = theta.mean(axis=0), theta.std(axis=0, ddof=1)
+        lev = np.array([level_only(g, b, mean) for g, b in zip(G3, b3)])
+        return {"mean": mean, "sd": sd, "level": lev.mean(axis=0), "level_sd": lev.std(axis=0, ddof=1)}
+
+    def _scatter_score(self, bl: dict[str, np.ndarray]) -> float:
+        """How much a basis's baseline scatter inflates the drift statistics: the sum over the
+        quasi-steady gains and the curvature level of (scatter / tolerance band)^2."""
+        s = self.settings
+        tol_g = np.maximum(s.coefficient_tolerance * np.abs(bl["mean"][0]), 1e-12)
+        tol_l = max(s.zero_shift_tolerance * self.limit, 1e-12)
+        return float(np.sum((bl["sd"][0] / tol_g) ** 2) + (bl["level_sd"][1] / tol_l) ** 2)
+
+    def _choose_basis(self) -> dict[str, np.ndarray]:
+        """End of a baseline: keep the candidate basis with the smaller scatter score."""
+        bl = self._baseline_of(np.array(self.base_acc))
+        if self.basis_alt.frozen and len(self.base_acc_alt) == len(self.base_acc):
+            alt = self._baseline_of(np.array(self.base_acc_alt))
+            if self._scatter_score(alt) < self._scatter_score(bl):
+                self.basis, self.basis_alt = self.basis_alt, self.basis
+                bl = alt
+        self.basis_alt.reset()
+        self.base_acc, self.base_acc_alt = [], []
+        return bl
+
+    def _baseline_and_drift(self, t: float, fit: np.ndarray | None,
+                            fit_alt: np.ndarray | None) -> list[Output]:
+        """Coefficient drift and the curvature zero-shift test on this window's estimate."""
+        out: list[Output] = []
+        s = self.settings
+        ident = self.ident
+        ref = ident.reference
+        self.win_a = [0.0, 0]
+        if ident.accepted == 0:
+            return out  # no validated model yet: the stream is not in a state to watch
+        if self.first_model_t is None:
+            self.first_model_t = t
+        if not self.basis.frozen:
+            # The start of the flow is a change like any other: the first baseline starts
+            # watch.rearm_s after the first validated model, once the start-up wake (whose
+            # influence decays only like 1/time) has mostly settled and the identifier's
+            # realisation has matured into a useful candidate basis.
+            if t - self.first_model_t >= s.rearm_s:
+                self._freeze_basis()
+            return out  # the first window on the new basis starts with the next one
+        if fit is None:
+            return out
+        theta, G3, b3 = _unpack(fit[None])
+        theta, G3, b3 = theta[0], G3[0], b3[0]
+        gains_ok = bool(np.all(np.isfinite(theta)))
         s_coefs = ("quasi_steady", "rate", "added_mass") if s.watch_rate_and_added_mass else (
             "quasi_steady",)
-        # coefficient drift: window estimates against the reference as the online estimator sees
-        # it at the start of the run (the baseline), standardised by their observed scatter
-        if w is not None and ref is not None and self.ident.accepted > 0:
-            th = w["interpretable"][:3]  # rows: quasi-steady, rate, added mass
-            if self.base is None:
-                if self.base_since is not None:  # re-baselining: let the old warnings clear
-                    for key, _ in COEFS:
-                        for o in OUTS:
-                            out += self.book.report(
-                                f"coefficient_drift:{key}.{o}", "coefficient_drift", f"{key}.{o}",
-                                None, 0.0, self.h, t, self.model_id,
-                                "Drift watch re-armed on the new level (advisory).")
-                self.base_acc.append(th.copy())
-                if len(self.base_acc) >= self.base_n:
-                    arr = np.array(self.base_acc)
-                    self.base = arr.mean(axis=0)
-                    self.base_sd = arr.std(axis=0, ddof=1)
-                    self.base_acc = []
-                    self.base_t = t
-                    for i, (key, row) in enumerate(COEFS):
+        if self.base is None:
+            if self.base_since is not None:  # re-baselining: let the old warnings clear
+                for key, _ in COEFS:
+                    for o in OUTS:
+                        out += self.book.report(
+                            f"coefficient_drift:{key}.{o}", "coefficient_drift", f"{key}.{o}",
+                            None, 0.0, self.h, t, self.model_id,
+                            "Drift watch re-armed on the new level (advisory).")
+            self.gauge_suspect = False
+            out += self.book.report("sensor_health:zero_drift", "sensor_health",
+                                    f"{self.gauge_channel}.zero", None, 0.0, self.h, t,
+                                    self.model_id, "Zero-shift watch re-armed (advisory).")
+            if gains_ok:
+                self.base_acc.append(fit.copy())
+                if fit_alt is not None and np.all(np.isfinite(fit_alt)):
+                    self.base_acc_alt.append(fit_alt.copy())
+            if len(self.base_acc) >= self.base_n:
+                bl = self._choose_basis()
+                self.base, self.base_sd = bl["mean"], bl["sd"]
+                self.base_level, self.base_level_sd = bl["level"], bl["level_sd"]
+                self.base_t = t
+                if ref is not None:
+                    for key, row in COEFS:
                         for j, o in enumerate(OUTS):
                             r0 = ref.coefficient(key)[j]
                             self.base_offset[f"{key}.{o}"] = (float(self.base[row, j] / r0 - 1)
                                                               if r0 else 0.0)
-            else:
-                z = np.zeros(self.n_coef_stats)
-                for i, (key, row) in enumerate(COEFS):
-                    for j, o in enumerate(OUTS):
-                        b0 = self.base[row, j]
-                        den = math.sqrt(self.base_sd[row, j] ** 2 + (s.coefficient_tolerance * b0) ** 2)
-                        zz = (th[row, j] - b0) / den if den > 0 else 0.0
-                        if (j == 1 and self.gauge_suspect) or key not in s_coefs:
-                            zz = float("nan")  # sensor fault / not watched: no structural verdict
-                        z[i * 2 + j] = zz
-                        self.last_z[f"{key}.{o}"] = float(zz)
-                alarms = self.cusum_coef.update(z)
-                stat = self.cusum_coef.statistic
-                since = ("the start of the run" if self.base_since is None
-                         else f"t = {self.base_t:.0f} s")
-                for i, (key, row) in enumerate(COEFS):
-                    for j, o in enumerate(OUTS):
-                        k = i * 2 + j
-                        level = "caution" if alarms[k] else None
-                        b0 = self.base[row, j]
-                        pct = 100 * (th[row, j] / b0 - 1) if b0 else 0.0
-                        out += self.book.report(
-                            f"coefficient_drift:{key}.{o}", "coefficient_drift", f"{key}.{o}",
-                            level, float(stat[k]), self.h, t, self.model_id,
-                            f"The {key.replace('_', '-')} {o} coefficient has moved {pct:+.1f} % "
-                            f"from its value at {since}, beyond its tolerance (advisory).")
-                # Re-arm after a sustained change: once an alarm has held for watch.rearm_s, the
-                # new level becomes the baseline (measured afresh), so a later change raises its
-                # own alarm. The offset to the calibration stays in ww.watch baseline_offset.
-                self.alarm_run = np.where(alarms, self.alarm_run + 1, 0)
-                if s.rearm_s > 0 and np.any(self.alarm_run * self.ident.settings.slow_period_s
-                                            >= s.rearm_s):
-                    self.base = None
-                    self.base_since = t
-                    self.cusum_coef.reset()
-                    self.alarm_run = np.zeros(self.n_coef_stats, dtype=int)
-        # mode drift and damping trend
-        out += self._modes(t)
+            return out
+        since = "the start of the run" if self.base_since is None else f"t = {self.base_t:.0f} s"
+        level = level_only(G3, b3, self.base)  # residual mean under the baseline columns
+        out += self._zero_shift(t, theta, level, gains_ok, since)
+        z = np.full(self.n_coef_stats, np.nan)
+        for i, (key, row) in enumerate(COEFS):
+            for j, o in enumerate(OUTS):
+                b0 = self.base[row, j]
+                den = math.sqrt(self.base_sd[row, j] ** 2 + (s.coefficient_tolerance * b0) ** 2)
+                zz = (theta[row, j] - b0) / den if den > 0 else 0.0
+                if not gains_ok or (j == 1 and self.gauge_suspect) or key not in s_coefs:
+                    zz = float("nan")  # no motion / sensor fault / not watched: no verdict
+                z[i * 2 + j] = zz
+                self.last_z[f"{key}.{o}"] = float(zz)
+        alarms = self.cusum_coef.update(z)
+        stat = self.cusum_coef.statistic
+        for i, (key, row) in enumerate(COEFS):
+            for j, o in enumerate(OUTS):
+                k = i * 2 + j
+                lvl = "caution" if alarms[k] else None
+                b0 = self.base[row, j]
+                pct = 100 * (theta[row, j] / b0 - 1) if b0 and gains_ok else 0.0
+                out += self.book.report(
+                    f"coefficient_drift:{key}.{o}", "coefficient_drift", f"{key}.{o}",
+                    lvl, float(stat[k]), self.h, t, self.model_id,
+                    f"The {key.replace('_', '-')} {o} coefficient has moved {pct:+.1f} % "
+                    f"from its value at {since}, beyond its tolerance (advisory).")
+        # Re-arm after a sustained change: once an alarm has held for watch.rearm_s, the new
+        # level becomes the baseline (measured afresh, on the basis chosen then), so a later
+        # change raises its own alarm. The offset to the calibration stays in ww.watch
+        # baseline_offset.
+        self.alarm_run = np.where(alarms, self.alarm_run + 1, 0)
+        if s.rearm_s > 0 and np.any(self.alarm_run * ident.settings.slow_period_s >= s.rearm_s):
+            self._rearm(t)
         return out
+
+    def _rearm(self, t: float) -> None:
+        self.base = None
+        self.base_since = t
+        self.cusum_coef.reset()
+        self.alarm_run = np.zeros(self.n_coef_stats, dtype=int)
+        self.cusum_zero.reset()
+        self.zero_wsum[:] = 0.0
+        self.zero_wn[:] = 0
+        self._freeze_basis()
+
+    def _zero_shift(self, t: float, theta: np.ndarray, level: np.ndarray, gains_ok: bool,
+                    since: str) -> list[Output]:
+        """Curvature gauge zero drift against a structural change (docs/watch.md).
+
+        ``u`` is the deviation of the curvature's residual mean under the baseline columns
+        (``level``) from its baseline value, standardised by its baseline scatter and the
+        zero-shift tolerance band; a two-sided CUSUM finds a shift. While it is alarmed, the
+        witnesses (curvature gain, lift level, lift gain, each in baseline standard deviations)
+        are averaged since the alarmed side of the CUSUM was last zero (its estimate of the
+        change time, Page 1954): ``Z = sum(w) / sqrt(n)`` is standard normal while the witness
+        has not moved. The gauge is suspected when no ``|Z|`` exceeds the Bonferroni-corrected
+        critical value.
+        """
+        s = self.settings
+        base, sd = self.base, self.base_sd
+        dl = float(level[1] - self.base_level[1])
+        den = math.hypot(self.base_level_sd[1], s.zero_shift_tolerance * self.limit)
+        u = dl / den if den > 0 else 0.0
+        w = np.full(len(WITNESSES), np.nan)
+        for i, (row, j) in enumerate(WITNESSES):
+            if row == LEVEL:
+                if self.base_level_sd[j] > 0:
+                    w[i] = (level[j] - self.base_level[j]) / self.base_level_sd[j]
+            elif gains_ok and sd[row, j] > 0:
+                w[i] = (theta[row, j] - base[row, j]) / sd[row, j]
+        was_zero = np.array([self.cusum_zero.s_up[0], self.cusum_zero.s_down[0]]) == 0.0
+        self.cusum_zero.update(np.array([u]))
+        now = np.array([self.cusum_zero.s_up[0], self.cusum_zero.s_down[0]])
+        for side in range(2):
+            if was_zero[side]:
+                self.zero_wsum[side] = 0.0  # this side starts a new excursion here
+                self.zero_wn[side] = 0
+            if now[side] > 0:
+                fin = np.isfinite(w)
+                self.zero_wsum[side, fin] += w[fin]
+                self.zero_wn[side, fin] += 1
+        self.last_z["zero_shift.curvature"] = float(u)
+        alarm = bool(self.cusum_zero.alarm[0])
+        side = 0 if now[0] >= now[1] else 1
+        n = self.zero_wn[side]
+        Z = np.where(n > 0, self.zero_wsum[side] / np.sqrt(np.maximum(n, 1)), 0.0)
+        moved = bool(np.any(np.abs(Z) > self.witness_z))
+        self.gauge_suspect = alarm and not moved
+        names = ("curvature_gain", "lift_level", "lift_gain")
+        self.zero_info = {"level_change": dl, "witness_z": {k: float(v) for k, v in zip(names, Z)},
+                          "witness_critical": self.witness_z, "suspect": self.gauge_suspect}
+        pct = 100.0 * dl / self.limit
+        return self.book.report(
+            "sensor_health:zero_drift", "sensor_health", f"{self.gauge_channel}.zero",
+            "advisory" if self.gauge_suspect else None, float(self.cusum_zero.statistic[0]),
+            self.h, t, self.model_id,
+            f"The {self.gauge_channel} gauge's zero seems to drift: the curvature at the operating "
+            f"point has moved {dl:+.4f} 1/m ({pct:+.2f} % of the limit) from its value at {since} "
+            f"while lift and the curvature's response to alpha have not. A sensor fault, not a "
+            f"structural change: curvature drift statistics are suspended; check the gauge "
+            f"(advisory).")
 
     def _modes(self, t: float) -> list[Output]:
         out: list[Output] = []
@@ -503,9 +699,17 @@ class Watcher:
         for k, name in enumerate(("mode.freq_hz", "mode.damping")):
             if name in drift:
                 drift[name]["cusum"] = float(stat_m[k])
+        if "zero_shift.curvature" in drift:
+            drift["zero_shift.curvature"]["cusum"] = float(self.cusum_zero.statistic[0])
+        sensors = {k: dict(v) for k, v in self.sensors.items()}
+        if self.gauge_suspect and sensors.get(self.gauge_channel, {}).get("state", "ok") == "ok":
+            dl = self.zero_info.get("level_change", 0.0)
+            sensors[self.gauge_channel] = {
+                "state": "zero_drift",
+                "detail": f"curvature level moved {dl:+.4f} 1/m with lift and gain unchanged"}
         return Output("watch", {
             "t": t, "model_id": self.model_id, "margin": fc, "drift": drift,
-            "stale": dict(self.stale), "sensors": dict(self.sensors),
+            "stale": dict(self.stale), "sensors": sensors,
             "baseline_offset": dict(self.base_offset),
         })
 
@@ -522,9 +726,17 @@ class Watcher:
             "noise_base": None if self.noise_base is None else self.noise_base.copy(),
             "noise_acc": [a.copy() for a in self.noise_acc], "noise_blocks": self.noise_blocks,
             "sensors": {k: dict(v) for k, v in self.sensors.items()},
-            "gauge_suspect": self.gauge_suspect, "hold_bias": list(self.hold_bias),
+            "gauge_suspect": self.gauge_suspect, "basis": self.basis.state_dict(),
+            "basis_alt": self.basis_alt.state_dict(),
+            "base_acc_alt": [a.copy() for a in self.base_acc_alt],
+            "win_a": list(self.win_a), "cusum_zero": self.cusum_zero.state_dict(),
+            "zero_wsum": self.zero_wsum.copy(), "zero_wn": self.zero_wn.copy(),
+            "zero_info": {k: (dict(v) if isinstance(v, dict) else v)
+                          for k, v in self.zero_info.items()},
             "damp_hist": list(self.damp_hist), "q_recent": self.q_recent,
             "base": None if self.base is None else self.base.copy(),
+            "base_level": None if self.base_level is None else self.base_level.copy(),
+            "base_level_sd": None if self.base_level_sd is None else self.base_level_sd.copy(),
             "base_sd": None if self.base_sd is None else self.base_sd.copy(),
             "base_acc": [a.copy() for a in self.base_acc], "base_offset": dict(self.base_offset),
             "plan": None if self.plan is None else [self.plan[0], self.plan[1], self.plan[2].copy()],
@@ -532,6 +744,7 @@ class Watcher:
             "mode_sd": None if self.mode_sd is None else self.mode_sd.copy(),
             "mode_acc": list(self.mode_acc), "mode_label": self.mode_label,
             "base_t": self.base_t, "base_since": self.base_since,
+            "first_model_t": self.first_model_t,
             "alarm_run": self.alarm_run.copy(),
             "margin_samples": self.margin_samples,
         }
@@ -555,10 +768,22 @@ class Watcher:
         self.noise_blocks = int(st["noise_blocks"])
         self.sensors = {k: dict(v) for k, v in st["sensors"].items()}
         self.gauge_suspect = bool(st["gauge_suspect"])
-        self.hold_bias = [tuple(x) for x in st["hold_bias"]]
+        self.basis.load_state_dict(st["basis"])
+        self.basis_alt.load_state_dict(st["basis_alt"])
+        self.base_acc_alt = [np.array(a, dtype=float) for a in st["base_acc_alt"]]
+        self.win_a = [float(st["win_a"][0]), int(st["win_a"][1])]
+        self.cusum_zero.load_state_dict(st["cusum_zero"])
+        self.zero_wsum = np.array(st["zero_wsum"], dtype=float).reshape(2, len(WITNESSES))
+        self.zero_wn = np.array(st["zero_wn"], dtype=int).reshape(2, len(WITNESSES))
+        self.zero_info = {k: (dict(v) if isinstance(v, dict) else v)
+                          for k, v in st["zero_info"].items()}
         self.damp_hist = [tuple(x) for x in st["damp_hist"]]
         self.q_recent = float(st["q_recent"])
         self.base = None if st["base"] is None else np.array(st["base"], dtype=float)
+        self.base_level = (None if st["base_level"] is None
+                           else np.array(st["base_level"], dtype=float))
+        self.base_level_sd = (None if st["base_level_sd"] is None
+                              else np.array(st["base_level_sd"], dtype=float))
         self.base_sd = None if st["base_sd"] is None else np.array(st["base_sd"], dtype=float)
         self.base_acc = [np.array(a, dtype=float) for a in st["base_acc"]]
         self.base_offset = dict(st["base_offset"])
@@ -570,5 +795,6 @@ class Watcher:
         self.mode_label = st["mode_label"]
         self.base_t = float(st["base_t"])
         self.base_since = st["base_since"]
+        self.first_model_t = st["first_model_t"]
         self.alarm_run = np.asarray(st["alarm_run"], dtype=int)
         self.margin_samples = int(st["margin_samples"])
