@@ -64,6 +64,7 @@ IDENTIFY_DEFAULTS: dict[str, Any] = {
     "gate": 0.1,
     "ci_batch_s": 2.0,
     "slow_period_s": 2.0,
+    "slow_lag_s": 0.5,
     "slow_window_s": 20.0,
     "decimate": 20,
     "markov_s": 5.0,
@@ -87,6 +88,7 @@ class IdentifySettings:
     gate: float
     ci_batch_s: float
     slow_period_s: float
+    slow_lag_s: float
     slow_window_s: float
     decimate: int
     markov_s: float
@@ -141,6 +143,9 @@ class IdentifySettings:
         if out["slow_window_s"] < 3.2 * out["markov_s"]:
             raise ConfigError(f"{where}: key 'identify.slow_window_s' must be at least 3.2 x "
                               "markov_s (the Markov fit needs that many samples).")
+        if out["slow_lag_s"] >= out["slow_period_s"]:
+            raise ConfigError(f"{where}: key 'identify.slow_lag_s' must be below slow_period_s (a "
+                              "candidate is applied before the next one is started).")
         if not 0 <= out["gate"] < 1:
             raise ConfigError(f"{where}: key 'identify.gate' must be in [0, 1).")
         if out["max_spectral_radius"] >= 1:
@@ -251,10 +256,18 @@ class OnlineIdentifier:
     reference : ReferenceModel, optional
         Start from it (normal); defaults to ``identify.reference_model`` when that names a file.
         Without one the stage runs cold, clearly flagged as having no reference.
+    background : bool
+        Run the slow layer's work on a worker thread between its snapshot and the sample count
+        where it takes effect (the live daemon does, so frames are not held behind it). The
+        outputs are the same either way.
     """
 
-    def __init__(self, config: Config, reference: ReferenceModel | None = None) -> None:
+    def __init__(self, config: Config, reference: ReferenceModel | None = None, *,
+                 background: bool = False) -> None:
         self.config = config
+        self.background = bool(background)
+        self._executor = None
+        self._futures: dict[int, Any] = {}
         self.settings = s = IdentifySettings.from_config(config)
         self.rate = config.conditioning_stream.rate_hz
         self.dt = 1.0 / self.rate
@@ -267,6 +280,7 @@ class OnlineIdentifier:
         self.block_n = max(1, int(round(s.block_s * self.rate)))
         self.slow_n = max(1, int(round(s.slow_period_s * self.rate)))
         self.window_n = int(round(s.slow_window_s * self.rate))
+        self.lag_n = int(round(s.slow_lag_s * self.rate))
         self.fit_lam = 2.0 ** (-1.0 / (s.fit_half_life_s * self.rate))
         self.reset()
 
@@ -292,6 +306,8 @@ class OnlineIdentifier:
         self.x = np.zeros(A.shape[0])
         self.sim = _BlockSim()
         self.markov_hyper: list | None = None  # kernel hyperparameters, warm start
+        self.job: dict[str, Any] | None = None  # slow-layer candidate waiting for its sample count
+        self._futures.clear()
         self.rls = self._new_rls(theta0)
         self.pending: list[ConditionedBlock] = []
         self.pending_n = 0
@@ -354,6 +370,8 @@ class OnlineIdentifier:
         self.settle_left = self.settings.diff_window
         self.x = np.zeros(self.rank)
         self.ring.clear()
+        if self.job is not None:
+            self.job["catchup"].append(None)
 
     def _process(self) -> list[Output]:
         blocks, self.pending, self.pending_n = self.pending, [], 0
@@ -402,10 +420,15 @@ class OnlineIdentifier:
         self.since_slow += n
         self.last_t = float(t[-1]) - self.lag * self.dt  # the newest sample the model has seen
         outputs: list[Output] = []
+        if self.job is not None:
+            self.job["catchup"].append((a, ad, add, dy, ok))
+            self.job["elapsed"] += n
+            if self.job["elapsed"] >= self.lag_n:
+                outputs.extend(self._finish_job())
         if self.since_slow >= self.slow_n:
             self.since_slow = 0
             self.last_window = self._window_estimate()
-            outputs.append(self._slow_update())
+            outputs.extend(self._slow_update())
             self.rate_sq, self.rate_n = 0.0, 0
             self._clear_window()
         return outputs
@@ -452,15 +475,17 @@ class OnlineIdentifier:
         with np.errstate(invalid="ignore", divide="ignore"):
             return np.sqrt(self.fit_e2 / np.maximum(self.fit_y2, 1e-300))
 
-    def _slow_update(self) -> Output:
+    def _slow_update(self) -> list[Output]:
+        """At a slow-update boundary: refuse at once, or snapshot the window for the slow layer.
+
+        The candidate computed from the snapshot is applied ``slow_lag_s`` of samples later
+        (:meth:`_finish_job`), after the fast layer has carried it over the samples in between.
+        With ``background`` the work runs on a worker thread meanwhile, so that frames are not
+        held behind it; either way the result, and when it takes effect, depend only on the
+        samples.
+        """
         s = self.settings
-        self.candidate_seq += 1
-        seq = self.candidate_seq
         reason = ""
-        A_new, B_new = self.A, self.B
-        rls_new = None
-        x_new = self.x
-        hsv = np.zeros(0)
         rms = math.degrees(math.sqrt(self.rate_sq / max(self.rate_n, 1)))
         if rms < s.min_rate_rms_deg_s:
             reason = (f"too little excitation since the last update (pitch-rate rms {rms:.2f} deg/s "
@@ -468,47 +493,102 @@ class OnlineIdentifier:
         elif self.ring.size < self.window_n:
             reason = (f"only {self.ring.size / self.rate:.1f} s of clean data since the start or the "
                       f"last discontinuity; the slow layer needs {s.slow_window_s:.1f} s")
-        else:
-            try:
-                A_new, B_new, rls_new, x_new, hsv = self._realise_window()
-            except IdentificationError as exc:
-                reason = str(exc)
-        if not reason:
+        if reason:
+            self.candidate_seq += 1
+            self.rejections += 1
+            return [self._model_output(self.candidate_seq, "rejected", reason, self.A, self.B,
+                                       self.rls, np.zeros(0))]
+        job = self._snapshot_job()
+        self.job = {"job": job, "elapsed": 0, "catchup": []}
+        if self.background:
+            self._futures[id(self.job)] = self._pool().submit(self._realise, job)
+        if self.lag_n == 0:
+            return self._finish_job()
+        return []
+
+    def _pool(self):
+        if self._executor is None:
+            from concurrent.futures import ThreadPoolExecutor
+
+            self._executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="wingwatch-slow")
+        return self._executor
+
+    def _finish_job(self) -> list[Output]:
+        """Apply the pending slow-layer candidate: catch up on the samples since its snapshot,
+        gate it, and publish it (accepted or rejected)."""
+        pending, self.job = self.job, None
+        future = self._futures.pop(id(pending), None)
+        self.candidate_seq += 1
+        seq = self.candidate_seq
+        reason = ""
+        hsv = np.zeros(0)
+        try:
+            res = future.result() if future is not None else self._realise(pending["job"])
+        except IdentificationError as exc:
+            res, reason = None, str(exc)
+        A_new, B_new, rls_new = self.A, self.B, None
+        x_new = self.x
+        if res is not None:
+            self.markov_hyper, self.rank_proposal = res["hyper"], res["proposal"]
+            A_new, B_new, rls_new, x_new, hsv = res["A"], res["B"], res["rls"], res["x"], res["hsv"]
+            for item in pending["catchup"]:  # what the fast layer saw since the snapshot
+                if item is None:  # a discontinuity: the transient state restarts
+                    x_new = np.zeros(A_new.shape[0])
+                    continue
+                a, ad, add, dy, ok = item
+                X, x_new = simulate_states(A_new, B_new[:, 0], ad, x_new)
+                if ok.any():
+                    phi = np.column_stack([a, ad, add, X, np.ones(a.size)])
+                    rls_new.update(phi[ok], dy[ok])
             reason = self._gate(A_new, rls_new)
         if reason:
             self.rejections += 1
-            return self._model_output(seq, "rejected", reason, self.A, self.B, self.rls, hsv)
+            return [self._model_output(seq, "rejected", reason, self.A, self.B, self.rls, hsv)]
         self.A, self.B, self.rls, self.x = A_new, B_new, rls_new, x_new
         self.accepted += 1
-        return self._model_output(seq, "accepted", "", self.A, self.B, self.rls, hsv)
+        self._clear_window()  # the watchers' window statistics restart in the new basis
+        return [self._model_output(seq, "accepted", "", self.A, self.B, self.rls, hsv)]
 
-    def _realise_window(self):
+    def _snapshot_job(self) -> dict[str, Any]:
+        """What the slow layer needs, copied at the slow-update boundary (see :meth:`_realise`)."""
+        return {"W": self.ring.view(), "rls": self.rls.state_dict(), "A": self.A.copy(),
+                "B": self.B.copy(), "rank_proposal": self.rank_proposal,
+                "hyper": self.markov_hyper}
+
+    def _realise(self, job: dict[str, Any]) -> dict[str, Any]:
+        """The slow layer's work on a snapshot: Markov parameters, ERA, basis transfer or refit.
+
+        A pure function of ``job`` (and the settings): it may run on a worker thread while the
+        fast layer goes on, and gives the same result wherever it runs.
+        """
         s = self.settings
-        W = self.ring.view()
+        W = job["W"]
         a, ad, add, dy = W[:, 0], W[:, 1], W[:, 2], W[:, 3:5]
-        th = self.rls.theta
+        A_old, B_old = job["A"], job["B"]
+        r_old = int(A_old.shape[0])
+        rls_old = self._new_rls(np.zeros((int(job["rls"]["n_regressors"]), 2)))
+        rls_old.load_state_dict(job["rls"])
+        th = rls_old.theta
         resid = dy - np.outer(a, th[0]) - np.outer(ad, th[1]) - np.outer(add, th[2]) - th[-1]
         est = estimate_markov(ad, resid, self.rate, decimate=s.decimate, markov_s=s.markov_s,
-                              min_lags=2 * s.max_rank + 2, hyper=self.markov_hyper)
-        self.markov_hyper = est.hyper
+                              min_lags=2 * s.max_rank + 2, hyper=job["hyper"])
         tf = realise(est, None, max_rank=s.max_rank, energy=s.rank_energy, gap=None,
-                     previous_rank=self.rank if self.rank else None)
+                     previous_rank=r_old if r_old else None)
         # Debounce: a new rank is taken only when two slow updates in a row ask for it, so a
         # noisy Hankel spectrum does not flip the rank back and forth.
         proposal = tf.rank
-        if self.rank and proposal != self.rank and proposal != self.rank_proposal:
+        if r_old and proposal != r_old and proposal != job["rank_proposal"]:
             try:
-                tf = realise(est, self.rank, max_rank=s.max_rank)
+                tf = realise(est, r_old, max_rank=s.max_rank)
             except IdentificationError:
                 pass  # the old rank no longer realises: take the new one now
-        self.rank_proposal = proposal
         A_new, B_new = tf.A, tf.B.reshape(-1, 1)
-        r_old, r_new = self.rank, tf.rank
+        r_new = tf.rank
         X_new, x_end = simulate_states(A_new, B_new[:, 0], ad)
         T = None
         if r_old == r_new and r_old > 0:
             # Map the old states onto the new ones over the window: X_new ~ X_old T^T.
-            X_old, _ = simulate_states(self.A, self.B[:, 0], ad)
+            X_old, _ = simulate_states(A_old, B_old[:, 0], ad)
             Tt, *_ = np.linalg.lstsq(X_old, X_new, rcond=None)
             T = Tt.T
             if not np.all(np.isfinite(T)) or np.linalg.cond(T) > 1e8:
@@ -519,7 +599,7 @@ class OnlineIdentifier:
                     T = None
         if T is not None:
             rls_new = self._new_rls(np.zeros((4 + r_new, 2)))
-            rls_new.load_state_dict(self.rls.state_dict())
+            rls_new.load_state_dict(job["rls"])
             rls_new.transform(T, columns=slice(3, 3 + r_new))
         else:
             # New rank (or a basis that does not map): refit over the window, from the current
@@ -530,8 +610,9 @@ class OnlineIdentifier:
             step = 1000
             for k in range(0, a.size, step):
                 rls_new.update(phi[k:k + step], dy[k:k + step])
-        # Carry the new state to the present: the window ends where the data end.
-        return A_new, B_new, rls_new, x_end, tf.hankel_sv
+        # The state at the end of the window: where the data of the snapshot end.
+        return {"A": A_new, "B": B_new, "rls": rls_new, "x": x_end, "hsv": tf.hankel_sv,
+                "proposal": proposal, "hyper": est.hyper}
 
     def _gate(self, A: np.ndarray, rls: RecursiveLeastSquares) -> str:
         s = self.settings
@@ -665,6 +746,10 @@ class OnlineIdentifier:
             "win": [self.win_G.copy(), self.win_b.copy(), self.win_yy.copy(), self.win_n],
             "last_window": None if self.last_window is None else dict(self.last_window),
             "in_service": self.in_service,
+            "job": None if self.job is None else {
+                "job": dict(self.job["job"]), "elapsed": self.job["elapsed"],
+                "catchup": [None if c is None else tuple(np.array(v) for v in c)
+                            for c in self.job["catchup"]]},
         }
 
     def load_state_dict(self, st: dict[str, Any]) -> None:
@@ -716,3 +801,15 @@ class OnlineIdentifier:
             k: (np.asarray(v, dtype=float) if k in ("theta", "se", "s2", "interpretable") else v)
             for k, v in lw.items()}
         self.in_service = st["in_service"]
+        jb = st.get("job")  # a candidate in flight is recomputed from its snapshot when due
+        if jb is not None:
+            j = jb["job"]
+            self.job = {
+                "job": {"W": np.asarray(j["W"], dtype=float), "rls": j["rls"],
+                        "A": np.asarray(j["A"], dtype=float).reshape(np.shape(j["A"])),
+                        "B": np.asarray(j["B"], dtype=float).reshape(np.shape(j["A"])[0], 1),
+                        "rank_proposal": int(j["rank_proposal"]), "hyper": j["hyper"]},
+                "elapsed": int(jb["elapsed"]),
+                "catchup": [None if c is None else (np.asarray(c[0], float), np.asarray(c[1], float),
+                                                    np.asarray(c[2], float), np.asarray(c[3], float),
+                                                    np.asarray(c[4], bool)) for c in jb["catchup"]]}

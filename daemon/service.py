@@ -38,11 +38,13 @@ _POLL_MS = 50
 _DRAIN_MAX = 1000  # messages handled per poll wake-up before the loop looks at its clock
 
 
-def make_pipeline(config: Config, reference: Any = None, *, identify: bool = True) -> Pipeline:
+def make_pipeline(config: Config, reference: Any = None, *, identify: bool = True,
+                  background: bool = False) -> Pipeline:
     """The daemon's pipeline: ingest and channel map, then identification (and the watchers).
 
     ``reference`` is a ReferenceModel or a path to a model file; None uses
-    ``identify.reference_model`` from the configuration (empty: run cold).
+    ``identify.reference_model`` from the configuration (empty: run cold). ``background`` runs
+    the identifier's slow layer on a worker thread (the live daemon); outputs are identical.
     """
     p = Pipeline(config)
     if identify:
@@ -52,7 +54,7 @@ def make_pipeline(config: Config, reference: Any = None, *, identify: bool = Tru
         from wingwatch.daemon.watch.stage import Watcher
 
         ref = load_model(reference) if isinstance(reference, (str, Path)) else reference
-        ident = OnlineIdentifier(config, ref)
+        ident = OnlineIdentifier(config, ref, background=background)
         p.stages.append(ident)
         p.stages.append(Watcher(config, ident))
     return p
@@ -202,7 +204,7 @@ class Daemon:
                 f"{config.source}: cannot bind the daemon's sockets ({exc}); is another daemon "
                 "running on these endpoints?"
             ) from None
-        pipeline = make_pipeline(config, reference, identify=identify)
+        pipeline = make_pipeline(config, reference, identify=identify, background=True)
         if state is not None:
             pipeline.load_state_dict(state)  # identification carries on, not from scratch
         self.session = Session(pipeline, recorder=self.recorder, sink=self._send)
