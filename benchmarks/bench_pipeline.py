@@ -106,12 +106,14 @@ def profile_breakdown(path, cfg, ref, top: int = 12) -> tuple[list[list], list[l
     ident = [
         ("  identifier: conditioning (Savitzky-Golay, delay line)",
          _cum(stats, "identify/differentiate.py", "update", _PROCESS)),
-        ("  identifier: fast layer, transient states (_BlockSim.run)",
-         _cum(stats, "daemon/identifier.py", "run", _PROCESS)),
+        ("  identifier: fast layer, transient states (simulate_states)",
+         _cum(stats, "identify/interpretable.py", "simulate_states", _PROCESS)),
         ("  identifier: fast layer, RLS update",
          _cum(stats, "identify/rls.py", "update", _PROCESS)),
-        ("  identifier: slow layer (_slow_update: Markov, ERA, basis transfer, model)",
-         _cum(stats, "daemon/identifier.py", "_slow_update", _PROCESS)),
+        ("  identifier: slow layer (_slow_update snapshot + _finish_job: Markov, ERA, basis "
+         "transfer, catch-up, model)",
+         _cum(stats, "daemon/identifier.py", "_slow_update", _PROCESS)
+         + _cum(stats, "daemon/identifier.py", "_finish_job", _PROCESS)),
     ]
     parts += ident
     rows = [[label, v * 1e3, 100 * v / total] for label, v in parts]

@@ -207,41 +207,6 @@ class _Ring:
         return np.concatenate([self.buf[self.head:], self.buf[:self.head]])
 
 
-class _BlockSim:
-    """Transient states over blocks of a fixed length, with (A, B) folded into two matrices.
-
-    ``X[k] = A^k x0 + sum_{j<k} A^(k-1-j) B u[j]`` becomes ``X = P x0 + T u`` and the state after
-    the block ``A^n x0 + H u``: two matrix-vector products per block instead of a loop over
-    samples. Rebuilt when (A, B) or the block length change.
-    """
-
-    def __init__(self) -> None:
-        self.key: tuple[int, int, int] | None = None
-
-    def run(self, A: np.ndarray, B: np.ndarray, u: np.ndarray, x0: np.ndarray
-            ) -> tuple[np.ndarray, np.ndarray]:
-        r, n = A.shape[0], u.size
-        if r == 0:
-            return np.zeros((n, 0)), x0
-        key = (id(A), id(B), n)
-        if key != self.key:
-            powers = np.empty((n + 1, r, r))
-            powers[0] = np.eye(r)
-            for k in range(1, n + 1):
-                powers[k] = A @ powers[k - 1]
-            h = powers[:n] @ B.reshape(r)  # h[m] = A^m B
-            lag = np.arange(n)[:, None] - np.arange(n)[None, :] - 1  # k - 1 - j
-            T = np.where((lag >= 0)[:, :, None], h[np.clip(lag, 0, None)], 0.0)  # (n, n, r)
-            self.P = powers[:n]  # (n, r, r)
-            self.T = T.transpose(0, 2, 1).reshape(n * r, n)
-            self.An = powers[n]
-            self.H = h[::-1].T.copy()  # (r, n): A^(n-1-j) B
-            self.key = key
-            self._hold = (A, B)  # keep the arrays alive so their ids stay theirs
-        X = (self.P @ x0) + (self.T @ u).reshape(n, r)
-        return X, self.An @ x0 + self.H @ u
-
-
 def _pair(v: np.ndarray) -> dict[str, float]:
     return {k: float(x) for k, x in zip(OUTPUT_KEYS, v)}
 
@@ -304,7 +269,6 @@ class OnlineIdentifier:
             theta0 = np.zeros((4, 2))
         self.A, self.B = A, B
         self.x = np.zeros(A.shape[0])
-        self.sim = _BlockSim()
         self.markov_hyper: list | None = None  # kernel hyperparameters, warm start
         self.job: dict[str, Any] | None = None  # slow-layer candidate waiting for its sample count
         self._futures.clear()
@@ -391,7 +355,7 @@ class OnlineIdentifier:
         a = d[:, 0] - self.alpha0
         ad, add = d[:, 1], d[:, 2]
         dy = ys - self.y0
-        X, self.x = self.sim.run(self.A, self.B, ad, self.x)
+        X, self.x = simulate_states(self.A, self.B[:, 0], ad, self.x)  # lifted maps, cached
         ok = flow_d.copy()
         if self.settle_left:
             k = min(self.settle_left, n)

@@ -125,12 +125,15 @@ def block_end_state(A, B, U, x0) -> np.ndarray:
     x = np.asarray(x0, dtype=float).reshape(A.shape[0])
     if n == 0:
         return x.copy()
-    out = None
-    for c in range(B.shape[1]):
-        powers, H, _ = _lifted(A, np.ascontiguousarray(B[:, c]), n)
-        term = H @ U[:, c]
-        out = powers[n] @ x + term if out is None else out + term
-    return out
+    L = min(n, 64)  # chunks of at most 64 samples: the lifted maps stay small and cached
+    maps = [_lifted(A, np.ascontiguousarray(B[:, c]), L) for c in range(B.shape[1])]
+    powers = maps[0][0]
+    for start in range(0, n, L):
+        m = min(L, n - start)
+        x = powers[m] @ x
+        for c, (_, H, _) in enumerate(maps):
+            x = x + H[:, L - m:] @ U[start:start + m, c]
+    return x
 
 
 _LIFT_CACHE: dict[tuple, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
