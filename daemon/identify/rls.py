@@ -372,9 +372,9 @@ class RecursiveLeastSquares:
         if self._gated or self.effective_batches < 5:
             return  # a weakly excited direction: keep the inflation learned while excited
         P = self.covariance
-        white = np.diag(P)[:, None] * self.residual_variance[None, :] * (self._n2 / self._n1)
-        robust = np.einsum("ij,mjk,ik->im", P, self._S, P)  # diag(P S_m P) per output
-        with np.errstate(divide="ignore", invalid="ignore"):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # undetermined: nan
+            white = np.diag(P)[:, None] * self.residual_variance[None, :] * (self._n2 / self._n1)
+            robust = np.einsum("ij,mjk,ik->im", P, self._S, P)  # diag(P S_m P) per output
             ratio = robust / white
         ok = np.isfinite(ratio)
         self._infl[ok] = np.maximum(ratio[ok], 1.0)
@@ -527,7 +527,8 @@ class RecursiveLeastSquares:
         """
         var = self.residual_variance
         ratio = self._n2 / self._n1 if self._n1 > 0 else np.nan
-        white = np.diag(self.covariance)[:, None] * var[None, :] * ratio
+        with np.errstate(invalid="ignore"):  # an undetermined estimate (inf covariance): nan
+            white = np.diag(self.covariance)[:, None] * var[None, :] * ratio
         return np.sqrt(white * self._infl)
 
     @property
