@@ -144,8 +144,17 @@ def test_subscriber_that_never_reads_does_not_slow_ingest(tmp_path, zctx):
             watcher, lambda p: decode_message(p[1])["counters"]["accepted"] >= n, 30)[1])
         # every frame taken: 1500 models of 64 kB went out while one subscriber read nothing
         assert st["counters"]["accepted"] == n
-        lazy.poll(0.2)  # drains what its queues held: the first few models only
-        pub.send(np.ones((10, 5)))  # one more model, after the gap
+        # Catch up: read what the queues held (the first few dozen models only) until nothing
+        # more models come for 0.5 s (heartbeats keep coming). One poll is not enough: with a
+        # receive queue of two, the rest is still in the sockets' buffers, the daemon's queue
+        # toward this subscriber stays full, and a model published meanwhile is dropped.
+        quiet_since, deadline, last = time.monotonic(), time.monotonic() + 20.0, None
+        while time.monotonic() - quiet_since < 0.5 and time.monotonic() < deadline:
+            lazy.poll(0.05)
+            if lazy.model is not last:
+                last, quiet_since = lazy.model, time.monotonic()
+        assert lazy.model is not None and lazy.model.seq < n  # the newest models were lost
+        pub.send(np.ones((10, 5)))  # one more model, after the gap: it must get through
         assert poll_until(lazy, lambda: lazy.model is not None and lazy.model.seq == n + 1,
                           timeout_s=20.0)  # generous: the machine may be busy
         # the stalled subscriber lost most models and knows how many, from the gap in pub_seq
