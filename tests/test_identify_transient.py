@@ -93,6 +93,49 @@ def test_joint_fit_separates_columns_from_a_smooth_lag():
     assert np.all(np.abs(je.beta[:, 0] - [2.0, 0.3, 0.05]) < 5 * sd + 1e-9)
 
 
+def _zoh(Ac, Bc, dt):
+    n = Ac.shape[0]
+    A, B, *_ = scipy.signal.cont2discrete((Ac, Bc, np.eye(n), np.zeros((n, 1))), dt, method="zoh")
+    return A, B
+
+
+def test_resample_in_the_eigenbasis_matches_zoh_both_ways_and_is_repeatable(monkeypatch):
+    """Down to the sample rate (the slow layer) and up to a controller step (the MPC example),
+    a slow pole near 1 included; the eigenbasis route never calls scipy's logm, whose last
+    bits vary from call to call on some of the slow layer's matrices (which broke exact
+    replay), and gives the same bytes every time."""
+    import scipy.linalg
+
+    def no_logm(*a, **k):
+        raise AssertionError("logm called for a well-conditioned realisation")
+
+    monkeypatch.setattr(scipy.linalg, "logm", no_logm)
+    Ac, Bc, _ = plant()
+    Ac = scipy.linalg.block_diag(Ac, [[-0.05]])  # a very slow state: pole exp(-0.05 dt) ~ 1
+    Bc = np.vstack([Bc, [[0.3]]])
+    for dt_from, dt_to in ((0.02, 0.001), (0.001, 0.005)):
+        A0, B0 = _zoh(Ac, Bc, dt_from)
+        A1, B1 = resample_realisation(A0, B0, dt_from, dt_to)
+        A1r, B1r = _zoh(Ac, Bc, dt_to)  # scipy cont2discrete (ZOH) as reference
+        np.testing.assert_allclose(A1, A1r, atol=1e-11)
+        np.testing.assert_allclose(B1, B1r, atol=1e-13)
+        again = {resample_realisation(A0, B0, dt_from, dt_to)[1].tobytes() for _ in range(50)}
+        assert again == {B1.tobytes()}
+
+
+def test_resample_of_a_nearly_defective_realisation_falls_back_and_stays_exact():
+    # A 2 x 2 Jordan block (a repeated real pole): no eigenbasis, so the matrix logarithm of
+    # the augmented system is used. Continuous form from log(lam I + N) = log(lam) I + N / lam.
+    lam, dt = 0.9, 0.02
+    Ac = np.array([[np.log(lam), 1.0 / lam], [0.0, np.log(lam)]]) / dt
+    Bc = np.array([[0.5], [1.0]])
+    A0, B0 = _zoh(Ac, Bc, dt)
+    A1, B1 = resample_realisation(A0, B0, dt, 0.001)
+    A1r, B1r = _zoh(Ac, Bc, 0.001)
+    np.testing.assert_allclose(A1, A1r, atol=1e-10)
+    np.testing.assert_allclose(B1, B1r, atol=1e-12)
+
+
 def test_resample_round_trip_and_refusals():
     Ac, Bc, _ = plant()
     A10, B10, *_ = scipy.signal.cont2discrete((Ac, Bc, np.eye(3), np.zeros((3, 1))), 0.01,

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from wingwatch.daemon.identify.interpretable import block_end_state
 from wingwatch.daemon.watch.margin import MarginForecaster
@@ -65,3 +66,29 @@ def test_block_end_state_equals_a_loop():
     for k in range(37):
         x = A @ x + B @ U[k]
     np.testing.assert_allclose(block_end_state(A, B, U, x0), x, rtol=1e-10, atol=1e-12)
+
+
+def test_a_new_realisation_takes_over_with_the_state_in_its_own_basis():
+    """Two realisations of the same dynamics need not share coordinates: after a switch to
+    ``T A T^-1, T B, C T^-1`` with the identifier's state ``T x`` the central forecast is the
+    same as if nothing had switched (the forecast is basis-free). A state kept from the old
+    model would be read in the wrong basis and the forecast would jump."""
+    rng = np.random.default_rng(11)
+    A, B, theta = _model(rng)
+    T = rng.standard_normal((6, 6)) + 3 * np.eye(6)
+    Ti = np.linalg.inv(T)
+    theta2 = theta.copy()
+    theta2[3:9] = (theta[3:9].T @ Ti).T  # C' = C T^-1, stored as C'^T rows
+    y0, r_var = np.array([0.3, 0.9]), np.array([1e-4, 1e-3])
+    ref, switched, kept = (MarginForecaster(2.0, 1.0, 1e-3) for _ in range(3))
+    for m in (ref, switched, kept):
+        m.set_model("m1", A, B, theta, 0.08, y0, r_var)
+        for seed in range(3):
+            m.update(*_block(np.random.default_rng(seed)), np.ones(100, bool))
+    x = ref.x.copy()
+    assert np.linalg.norm(theta[3:9].T @ x) > 1e-3  # a state that matters to the outputs
+    switched.set_model("m2", T @ A @ Ti, T @ B, theta2, 0.08, y0, r_var, x0=T @ x)
+    kept.set_model("m2", T @ A @ Ti, T @ B, theta2, 0.08, y0, r_var)  # no state given
+    f_ref, f_sw, f_kept = (m.forecast() for m in (ref, switched, kept))
+    assert f_sw["kappa_max_forecast"] == pytest.approx(f_ref["kappa_max_forecast"], rel=1e-9)
+    assert f_kept["kappa_max_forecast"] != pytest.approx(f_ref["kappa_max_forecast"], rel=1e-3)

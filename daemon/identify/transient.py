@@ -86,18 +86,48 @@ def resample_realisation(A: np.ndarray, B: np.ndarray, dt_from: float, dt_to: fl
                          ) -> tuple[np.ndarray, np.ndarray]:
     """Carry a zero-order-hold discrete (A, B) from sample time ``dt_from`` to ``dt_to``.
 
+    With ``A = exp(A_c dt_from)`` and ``p = dt_to / dt_from``, the same continuous system held
+    over ``dt_to`` has ``A' = A^p`` (principal power) and
+    ``B' = A_c^-1 (A' - I) B_c = (A' - I)(A - I)^-1 B``: all are functions of ``A_c`` and
+    commute (zero-order hold, e.g. Franklin, Powell and Workman, "Digital Control of Dynamic
+    Systems", 3rd ed. 1998, sec. 4.3.3, from memory). Both are evaluated in the eigenbasis
+    ``A = V diag(lam) V^-1``: ``lam^p`` and ``(lam^p - 1) / (lam - 1) = expm1(p log lam) /
+    expm1(log lam)``, which stays accurate for poles near 1 (slow modes).
+
+    Why not ``scipy.linalg.logm``: it is not bit-reproducible. The same 11 x 11 matrix from the
+    rig's slow layer gave two different last-bit results over 300 calls (scipy 1.17.1, one
+    BLAS thread), and exact replay needs the same bytes every time. The eigenbasis route is
+    only taken while ``V`` is well conditioned; a nearly defective ``A`` (close repeated
+    poles) falls back to the matrix logarithm of the augmented ``[[A, B], [0, I]]``.
+
     Raises IdentificationError when A has an eigenvalue on or near the negative real axis (no
     real continuous-time model: the decimated rate is too low for the data).
     """
     A = np.atleast_2d(np.asarray(A, dtype=float))
     B = np.asarray(B, dtype=float).reshape(A.shape[0], -1)
     n, m = B.shape
-    ev = np.linalg.eigvals(A)
+    ev, V = np.linalg.eig(A)
     if np.any((np.abs(ev.imag) < 1e-9) & (ev.real <= 0.0)):
         raise IdentificationError(
             "the transient has a pole on the negative real axis at the decimated rate; "
             "lower the decimation factor"
         )
+    if np.any(ev == 0):
+        raise IdentificationError("the transient realisation has a pole at zero: no "
+                                  "continuous-time form")
+    p = dt_to / dt_from
+    cond = np.linalg.cond(V) if n else 1.0
+    if np.isfinite(cond) and cond < 1e8:
+        log_ev = np.log(ev.astype(complex))
+        ratio = np.expm1(p * log_ev) / np.where(log_ev == 0, 1.0, np.expm1(log_ev))
+        ratio = np.where(log_ev == 0, p, ratio)  # a pole at 1 (an integrator): p steps of B
+        Vinv = np.linalg.inv(V)
+        A_new = (V * np.exp(p * log_ev)) @ Vinv
+        B_new = (V * ratio) @ (Vinv @ B)
+        scale = max(1.0, float(np.max(np.abs(A_new))))
+        if np.max(np.abs(A_new.imag)) > 1e-6 * scale:
+            raise IdentificationError("the transient realisation has no real continuous-time form")
+        return np.ascontiguousarray(A_new.real), np.ascontiguousarray(B_new.real)
     M = np.zeros((n + m, n + m))
     M[:n, :n] = A
     M[:n, n:] = B
@@ -105,7 +135,7 @@ def resample_realisation(A: np.ndarray, B: np.ndarray, dt_from: float, dt_to: fl
     L = scipy.linalg.logm(M)
     if np.max(np.abs(np.imag(L))) > 1e-6 * max(1.0, np.max(np.abs(L))):
         raise IdentificationError("the transient realisation has no real continuous-time form")
-    L = np.real(L) * (dt_to / dt_from)  # [[A_c, B_c], [0, 0]] * dt_to
+    L = np.real(L) * p  # [[A_c, B_c], [0, 0]] * dt_to
     E = scipy.linalg.expm(L)
     return E[:n, :n], E[:n, n:]
 

@@ -67,8 +67,16 @@ class MarginForecaster:
         self.last = {"a": 0.0, "ad": 0.0, "add": 0.0, "kappa": 0.0}
 
     def set_model(self, key: Any, A: np.ndarray, B: np.ndarray, theta: np.ndarray,
-                  alpha0: float, y0: np.ndarray, r_var: np.ndarray) -> None:
-        """Switch to a model (A, B, theta rows [K_qs, K_rate, K_am, C^T, bias])."""
+                  alpha0: float, y0: np.ndarray, r_var: np.ndarray,
+                  x0: np.ndarray | None = None) -> None:
+        """Switch to a model (A, B, theta rows [K_qs, K_rate, K_am, C^T, bias]).
+
+        ``x0`` is the model's transient state now, in its own basis (the identifier carries its
+        state into each new realisation). A state kept from the previous model would be read in
+        the wrong basis: two realisations of the same rank need not share coordinates, and the
+        forecast then jumps (on the rig: a forecast of twice the limit at a slow update while
+        the curvature sat at half of it). Without ``x0`` a state of the right size is kept.
+        """
         if key == self.model_key:
             return
         self.model_key = key
@@ -79,7 +87,9 @@ class MarginForecaster:
         self.alpha0 = float(alpha0)
         self.y0 = np.asarray(y0, dtype=float)
         self.r_var = np.maximum(np.asarray(r_var, dtype=float), 1e-12)
-        if self.x.shape != (r,):
+        if x0 is not None and np.shape(x0) == (r,):
+            self.x = np.array(x0, dtype=float)
+        elif self.x.shape != (r,):
             self.x = np.zeros(r)
         if r == 0:
             self.gain = np.zeros((0, 2))

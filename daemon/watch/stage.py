@@ -262,8 +262,10 @@ class Watcher:
         if q.size:
             self.q_recent = float(np.nanmean(q))
         t_end = float(lb["t"][-1])
-        self._track_model()
+        # The block ran through the identifier's model of the time; a new model from the slow
+        # update at its end takes over (with the identifier's state) from the next block on.
         self.margin.update(lb["a"], lb["ad"], lb["add"], lb["dy"], lb["ok"])
+        self._track_model()
         self._reference_residual(lb)
         for basis in (self.basis, self.basis_alt):
             basis.add(lb["a"], lb["ad"], lb["add"], lb["dy"], lb["ok"])
@@ -297,7 +299,7 @@ class Watcher:
         key = (m["model_id"], ident.rank) if m else ("none", ident.rank)
         s2 = ident.last_window["s2"] if ident.last_window else np.full(2, 1e-6)
         self.margin.set_model(key, ident.A, ident.B, ident.rls.theta, ident.alpha0 or 0.0,
-                              ident.y0 if ident.y0 is not None else np.zeros(2), s2)
+                              ident.y0 if ident.y0 is not None else np.zeros(2), s2, x0=ident.x)
 
     def _reference_residual(self, lb: dict[str, Any]) -> None:
         ref = self.ident.reference
