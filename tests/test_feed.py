@@ -144,7 +144,7 @@ def test_subscriber_that_never_reads_does_not_slow_ingest(tmp_path, zctx):
             watcher, lambda p: decode_message(p[1])["counters"]["accepted"] >= n, 30)[1])
         # every frame taken: 1500 models of 64 kB went out while one subscriber read nothing
         assert st["counters"]["accepted"] == n
-        # Catch up: read what the queues held (the first few dozen models only) until nothing
+        # Catch up: read what the queues held (the first few dozen models only) until no
         # more models come for 0.5 s (heartbeats keep coming). One poll is not enough: with a
         # receive queue of two, the rest is still in the sockets' buffers, the daemon's queue
         # toward this subscriber stays full, and a model published meanwhile is dropped.

@@ -123,14 +123,20 @@ def test_resample_in_the_eigenbasis_matches_zoh_both_ways_and_is_repeatable(monk
         assert again == {B1.tobytes()}
 
 
-def test_resample_of_a_nearly_defective_realisation_falls_back_and_stays_exact():
+def test_resample_of_a_nearly_defective_realisation_falls_back_and_stays_exact(monkeypatch):
     # A 2 x 2 Jordan block (a repeated real pole): no eigenbasis, so the matrix logarithm of
     # the augmented system is used. Continuous form from log(lam I + N) = log(lam) I + N / lam.
+    import scipy.linalg
+
+    calls = []
+    logm = scipy.linalg.logm
+    monkeypatch.setattr(scipy.linalg, "logm", lambda M: calls.append(M.shape) or logm(M))
     lam, dt = 0.9, 0.02
     Ac = np.array([[np.log(lam), 1.0 / lam], [0.0, np.log(lam)]]) / dt
     Bc = np.array([[0.5], [1.0]])
     A0, B0 = _zoh(Ac, Bc, dt)
     A1, B1 = resample_realisation(A0, B0, dt, 0.001)
+    assert calls == [(3, 3)]  # the fallback ran, on the augmented matrix
     A1r, B1r = _zoh(Ac, Bc, 0.001)
     np.testing.assert_allclose(A1, A1r, atol=1e-10)
     np.testing.assert_allclose(B1, B1r, atol=1e-12)

@@ -95,10 +95,10 @@ def resample_realisation(A: np.ndarray, B: np.ndarray, dt_from: float, dt_to: fl
     expm1(log lam)``, which stays accurate for poles near 1 (slow modes).
 
     Why not ``scipy.linalg.logm``: it is not bit-reproducible. The same 11 x 11 matrix from the
-    rig's slow layer gave two different last-bit results over 300 calls (scipy 1.17.1, one
-    BLAS thread), and exact replay needs the same bytes every time. The eigenbasis route is
-    only taken while ``V`` is well conditioned; a nearly defective ``A`` (close repeated
-    poles) falls back to the matrix logarithm of the augmented ``[[A, B], [0, I]]``.
+    rig's slow layer gave two different last-bit results over 300 calls (scipy 1.17.1, with
+    one BLAS thread as with two), and exact replay needs the same bytes every time. The
+    eigenbasis route is only taken while ``V`` is well conditioned; a nearly defective ``A``
+    (close repeated poles) falls back to the matrix logarithm of ``[[A, B], [0, I]]``.
 
     Raises IdentificationError when A has an eigenvalue on or near the negative real axis (no
     real continuous-time model: the decimated rate is too low for the data).
@@ -112,16 +112,16 @@ def resample_realisation(A: np.ndarray, B: np.ndarray, dt_from: float, dt_to: fl
             "the transient has a pole on the negative real axis at the decimated rate; "
             "lower the decimation factor"
         )
-    if np.any(ev == 0):
-        raise IdentificationError("the transient realisation has a pole at zero: no "
-                                  "continuous-time form")
     p = dt_to / dt_from
-    cond = np.linalg.cond(V) if n else 1.0
-    if np.isfinite(cond) and cond < 1e8:
-        log_ev = np.log(ev.astype(complex))
-        ratio = np.expm1(p * log_ev) / np.where(log_ev == 0, 1.0, np.expm1(log_ev))
-        ratio = np.where(log_ev == 0, p, ratio)  # a pole at 1 (an integrator): p steps of B
+    try:
         Vinv = np.linalg.inv(V)
+        cond = np.linalg.norm(V, 1) * np.linalg.norm(Vinv, 1)  # 1-norm condition number
+    except np.linalg.LinAlgError:
+        cond = np.inf
+    if cond < 1e8:
+        log_ev = np.log(ev.astype(complex))  # the check above keeps ev off the branch cut
+        one = log_ev == 0  # a pole at 1 (an integrator) holds p steps of B
+        ratio = np.where(one, p, np.expm1(p * log_ev) / np.where(one, 1.0, np.expm1(log_ev)))
         A_new = (V * np.exp(p * log_ev)) @ Vinv
         B_new = (V * ratio) @ (Vinv @ B)
         scale = max(1.0, float(np.max(np.abs(A_new))))
