@@ -7,7 +7,7 @@ sensor warning after it (kind, delay), the warnings raised before the first even
 alarms), and, for the creep, how long before the rig's true curvature reached the limit the
 first curvature-margin warning came. A script, not a test: it takes several minutes.
 
-    python benchmarks/campaign_check.py [--duration S] [--seed N] [--out DIR]
+    python benchmarks/campaign_check.py [--duration S] [--seed N] [--config FILE] [--out DIR]
 """
 
 from __future__ import annotations
@@ -29,6 +29,9 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--duration", type=float, default=None, help="seconds of the campaign")
     ap.add_argument("--seed", type=int, default=None)
+    ap.add_argument("--config", default=None, metavar="FILE",
+                    help="daemon configuration to run with (default: the shipped one), e.g. other "
+                         "[watch] thresholds")
     ap.add_argument("--out", default=None, help="folder for the log, truth and results")
     a = ap.parse_args(argv)
 
@@ -44,7 +47,7 @@ def main(argv: list[str] | None = None) -> int:
 
     out = Path(a.out or tempfile.mkdtemp(prefix="ww-campaign-"))
     out.mkdir(parents=True, exist_ok=True)
-    cfg = load_config()
+    cfg = load_config(a.config) if a.config else load_config()
     t0 = time.perf_counter()
     ref = load_model(ensure_reference(out / "ref", cfg, say=lambda m: print(m, file=sys.stderr)))
     rig = VirtualRig(load_scenario("campaign"), seed=a.seed, duration_s=a.duration)

@@ -12,7 +12,8 @@ coefficient-drift, mode-drift and stale-model warnings (the drift alarms), and, 
 information, every other warning kind raised. A script, not a test: it takes several minutes
 per seed.
 
-    python benchmarks/stationary_check.py [--seeds 1,2,3,4,5] [--duration S] [--out DIR] [--keep-logs]
+    python benchmarks/stationary_check.py [--seeds 1,2,3,4,5] [--duration S] [--config FILE]
+                                          [--out DIR] [--keep-logs]
 
 Prints a table and writes ``stationary_check.json`` in ``--out``.
 """
@@ -70,6 +71,9 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--seeds", default="1,2,3,4,5", help="comma-separated rig seeds")
     ap.add_argument("--duration", type=float, default=1800.0, help="seconds per seed")
+    ap.add_argument("--config", default=None, metavar="FILE",
+                    help="daemon configuration to run with (default: the shipped one), e.g. other "
+                         "[watch] thresholds")
     ap.add_argument("--out", default=None, help="folder for the reference, logs and results")
     ap.add_argument("--keep-logs", action="store_true", help="keep the rig logs (about 70 MB each)")
     a = ap.parse_args(argv)
@@ -82,7 +86,7 @@ def main(argv: list[str] | None = None) -> int:
     seeds = [int(s) for s in a.seeds.split(",") if s.strip()]
     out = Path(a.out or tempfile.mkdtemp(prefix="ww-stationary-"))
     out.mkdir(parents=True, exist_ok=True)
-    cfg = load_config()
+    cfg = load_config(a.config) if a.config else load_config()
     ref = load_model(ensure_reference(out / "ref", cfg, say=lambda m: print(m, file=sys.stderr)))
     rows = []
     for seed in seeds:

@@ -73,10 +73,18 @@ def test_source_restart_is_an_event_counted_and_ingest_goes_on(cfg, zctx):
         assert again.wait_ready(5)
         for i in range(50):
             again.send(block(1000 + i))
+        # all of them in before the next source connects: two connected sources are
+        # fair-queued, so a late frame of this one could otherwise arrive after the jump
+        def in_150(parts):
+            m = decode_message(parts[1])
+            if m["kind"] == "event":
+                events.append(m)
+            return m["kind"] == "status" and m["counters"]["accepted"] + m["counters"]["rejected"] >= 150
+        recv_until(sub, in_150, 10)
+        again.close()
         jumped = FramePublisher(cfg.endpoints.sensor, channels=CH, rate_hz=1000.0, context=zctx,
                                 t0=86_400.0)
         assert jumped.wait_ready(5)
-        again.close()
         for i in range(50):
             jumped.send(block(2000 + i))
 

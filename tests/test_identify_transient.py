@@ -155,3 +155,83 @@ def test_resample_round_trip_and_refusals():
         resample_realisation(np.array([[-0.5]]), np.array([[1.0]]), 0.01, 0.001)
     with pytest.raises(IdentificationError, match="too few"):
         realise_transient(np.zeros(500), np.zeros((500, 2)), RATE)
+
+
+def test_tc_kernel_inverse_and_log_determinant_in_closed_form():
+    from wingwatch.daemon.identify.transient import _tc_kernel, _tc_precision, _tc_precision_dense
+
+    # Reference: numpy.linalg.inv and slogdet of the kernel matrix itself.
+    for n, lam in [(2, 0.5), (12, 0.9), (60, 0.97), (120, 0.995)]:
+        P = _tc_kernel(n, lam)
+        Q = _tc_precision_dense(n, lam)
+        np.testing.assert_allclose(Q @ P, np.eye(n), atol=1e-9)
+        np.testing.assert_allclose(Q, np.linalg.inv(P), rtol=1e-7, atol=1e-7 * np.abs(Q).max())
+        assert _tc_precision(n, lam)[2] == pytest.approx(np.linalg.slogdet(P)[1], rel=1e-10)
+
+
+def test_fir_markov_is_the_marginal_likelihood_choice_and_posterior_mean():
+    """The (L+1)-dimensional form against the textbook N-dimensional one: r ~ N(0, c V P V^T +
+    s2 I) maximised over the same grid (scipy.stats.multivariate_normal), then the posterior mean
+    c P V^T (c V P V^T + s2 I)^-1 r (Chen, Ohlsson and Ljung, Automatica 2012, eqs. 10-12, from
+    memory)."""
+    import scipy.stats
+
+    from wingwatch.daemon.identify.transient import DECAYS, SCALES, _tc_kernel
+
+    rng = np.random.default_rng(7)
+    n, lags = 160, 12
+    u = rng.standard_normal(n)
+    h_true = 0.8 ** np.arange(lags + 1) * np.sin(0.7 * np.arange(lags + 1))
+    r = np.convolve(u, h_true)[:n] + 0.3 * rng.standard_normal(n)
+    chosen: list = []
+    mk = fir_markov(u, r, lags, chosen=chosen)
+    p = lags + 1
+    V = np.lib.stride_tricks.sliding_window_view(u, p)[:, ::-1]
+    R = r[lags:]
+    h_ls, *_ = np.linalg.lstsq(V, R, rcond=None)
+    s2 = np.sum((R - V @ h_ls) ** 2) / (R.size - p)
+    base = np.trace(V.T @ V) / p
+    best = None
+    for di, lam in enumerate(DECAYS):
+        P = _tc_kernel(p, lam)
+        for si, sc in enumerate(SCALES):
+            c = sc * np.var(R) / base
+            S = c * V @ P @ V.T + s2 * np.eye(R.size)
+            ll = scipy.stats.multivariate_normal(np.zeros(R.size), S, allow_singular=True).logpdf(R)
+            if best is None or ll > best[0]:
+                best = (ll, (di, si), c * P @ V.T @ np.linalg.solve(S, R))
+    assert tuple(chosen[0]) == best[1]
+    np.testing.assert_allclose(mk[:, 0, 0], best[2], rtol=1e-6, atol=1e-9)
+
+
+def test_era_on_shared_hankel_factors_is_bit_identical():
+    from wingwatch.daemon.identify.era import era, hankel_factors, markov_of
+
+    rng = np.random.default_rng(3)
+    A = np.diag([0.9, 0.5, -0.3, 0.7]) + 0.05 * rng.standard_normal((4, 4))
+    mk = markov_of(A, rng.standard_normal((4, 1)), rng.standard_normal((2, 4)), np.zeros((2, 1)), 31)
+    fac = hankel_factors(mk, 15, 15)
+    U0 = fac.U.copy()
+    for rank in (1, 2, 4, 3):
+        a, b = era(mk, rank, 15, 15), era(mk, rank, 15, 15, factors=fac)
+        for x, y in ((a.A, b.A), (a.B, b.B), (a.C, b.C), (a.hankel_sv, b.hankel_sv)):
+            assert np.array_equal(x, y)
+    assert np.array_equal(fac.U, U0)  # the sign fixing did not touch the shared factors
+    other = era(mk, 2, 14, 16, factors=fac)  # another block shape: the factors are not used
+    assert np.array_equal(other.A, era(mk, 2, 14, 16).A)
+
+
+def test_state_map_matches_lstsq_and_is_minimum_norm_when_rank_deficient():
+    from wingwatch.daemon.identifier import _state_map
+
+    rng = np.random.default_rng(5)
+    X = rng.standard_normal((3000, 5)) * np.array([1.0, 10.0, 0.1, 3.0, 1e-3])
+    T = rng.standard_normal((5, 5))
+    Y = X @ T + 1e-3 * rng.standard_normal((3000, 5))
+    ref, *_ = np.linalg.lstsq(X, Y, rcond=None)  # reference: numpy's SVD least squares
+    np.testing.assert_allclose(_state_map(X, Y), ref, rtol=1e-8, atol=1e-8 * np.abs(ref).max())
+    Xd = np.column_stack([X[:, :3], X[:, 0] + X[:, 1]])  # a dependent column
+    ref_d, *_ = np.linalg.lstsq(Xd, Y, rcond=1e-10)
+    Td = _state_map(Xd, Y)
+    assert np.all(np.isfinite(Td))  # not unique: the same least-squares residual is what counts
+    assert np.linalg.norm(Xd @ Td - Y) == pytest.approx(np.linalg.norm(Xd @ ref_d - Y), rel=1e-9)

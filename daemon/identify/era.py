@@ -34,6 +34,8 @@ __all__ = [
     "Realisation",
     "block_hankel",
     "era",
+    "HankelFactors",
+    "hankel_factors",
     "markov_of",
     "choose_rank",
     "unexplained_fraction",
@@ -164,7 +166,51 @@ def _fix_signs(U: np.ndarray, Vt: np.ndarray, r: int) -> None:
     Vt[:r] *= s[:, None]
 
 
-def era(markov, rank: int, rows: int | None = None, cols: int | None = None) -> Realisation:
+@dataclass(frozen=True, eq=False)
+class HankelFactors:
+    """The singular value decomposition of ``H(0)`` and the shifted ``H(1)``, computed once and
+    shared by every :func:`era` call at any rank on the same Markov parameters and block shape
+    (the online slow layer reads the singular values for the rank choice and then realises, at
+    up to three ranks, from the same Hankel matrix). Read-only."""
+
+    rows: int
+    cols: int
+    h1: np.ndarray
+    U: np.ndarray
+    s: np.ndarray
+    Vt: np.ndarray
+
+
+def _block_shape(n_markov: int, rows: int | None, cols: int | None) -> tuple[int, int]:
+    usable = n_markov - 1
+    if rows is None and cols is None:
+        rows = usable // 2
+        cols = usable - rows
+    elif rows is None:
+        rows = usable - cols
+    elif cols is None:
+        cols = usable - rows
+    if rows < 1 or cols < 1 or rows + cols > usable:
+        raise ValueError(
+            f"rows={rows} and cols={cols} need rows + cols <= n_markov - 1 = {usable}"
+        )
+    return rows, cols
+
+
+def hankel_factors(markov, rows: int | None = None, cols: int | None = None) -> HankelFactors:
+    """``H(0) = U S V^T`` (Juang & Pappa 1985, eqs. 8-9) and ``H(1)``, for :func:`era`."""
+    mk = _as_markov(markov)
+    rows, cols = _block_shape(mk.shape[0], rows, cols)
+    h0 = block_hankel(mk, rows, cols, shift=0)  # H(0), Juang & Pappa eq. 8
+    h1 = block_hankel(mk, rows, cols, shift=1)  # H(1)
+    U, s, Vt = np.linalg.svd(h0, full_matrices=False)  # H(0) = U S V^T, eq. 9
+    for a in (h1, U, s, Vt):
+        a.flags.writeable = False
+    return HankelFactors(rows=rows, cols=cols, h1=h1, U=U, s=s, Vt=Vt)
+
+
+def era(markov, rank: int, rows: int | None = None, cols: int | None = None, *,
+        factors: HankelFactors | None = None) -> Realisation:
     """Balanced realisation of Markov parameters by the Eigensystem Realization Algorithm.
 
     With ``H(0) = U S V^T`` truncated to ``rank`` singular values (Juang & Pappa 1985,
@@ -184,6 +230,9 @@ def era(markov, rank: int, rows: int | None = None, cols: int | None = None) -> 
     rows, cols : int, optional
         Block rows and columns of the Hankel matrix. By default the ``n_markov - 1`` usable
         parameters are split as evenly as possible (``rows + cols = n_markov - 1``).
+    factors : HankelFactors, optional
+        From :func:`hankel_factors` on the same ``markov``, ``rows`` and ``cols``: the SVD is
+        then not recomputed (same result, bit for bit).
 
     Returns
     -------
@@ -205,35 +254,25 @@ def era(markov, rank: int, rows: int | None = None, cols: int | None = None) -> 
     """
     mk = _as_markov(markov)
     n_markov, n_out, n_in = mk.shape
-    usable = n_markov - 1
-    if rows is None and cols is None:
-        rows = usable // 2
-        cols = usable - rows
-    elif rows is None:
-        rows = usable - cols
-    elif cols is None:
-        cols = usable - rows
-    if rows < 1 or cols < 1 or rows + cols > usable:
-        raise ValueError(
-            f"rows={rows} and cols={cols} need rows + cols <= n_markov - 1 = {usable}"
-        )
+    rows, cols = _block_shape(n_markov, rows, cols)
     if not 1 <= rank <= min(rows * n_out, cols * n_in):
         raise ValueError(
             f"rank must be between 1 and {min(rows * n_out, cols * n_in)}, got {rank}"
         )
-    h0 = block_hankel(mk, rows, cols, shift=0)  # H(0), Juang & Pappa eq. 8
-    h1 = block_hankel(mk, rows, cols, shift=1)  # H(1)
-    U, s, Vt = np.linalg.svd(h0, full_matrices=False)  # H(0) = U S V^T, eq. 9
-    if s[0] == 0.0 or s[rank - 1] <= s[0] * 1e3 * np.finfo(float).eps * max(h0.shape):
+    if factors is None or (factors.rows, factors.cols) != (rows, cols):
+        factors = hankel_factors(mk, rows, cols)
+    h1, U, s, Vt = factors.h1, factors.U, factors.s, factors.Vt
+    if s[0] == 0.0 or s[rank - 1] <= s[0] * 1e3 * np.finfo(float).eps * max(U.shape[0], Vt.shape[1]):
         raise IdentificationError(
             f"the Hankel matrix supports fewer than rank={rank} states "
             f"(singular value {rank} is numerically zero)"
         )
-    _fix_signs(U, Vt, rank)
-    Ur, Vr = U[:, :rank], Vt[:rank].T
+    Ur, Vtr = U[:, :rank].copy(), Vt[:rank].copy()  # the shared factors stay untouched
+    _fix_signs(Ur, Vtr, rank)
+    Vr = Vtr.T
     root = np.sqrt(s[:rank])
     A = (Ur.T @ h1 @ Vr) / root[:, None] / root[None, :]  # A = S^-1/2 U^T H(1) V S^-1/2, eq. 33
-    B = root[:, None] * Vt[:rank, :n_in]  # B = S^1/2 V^T E_m, eq. 34
+    B = root[:, None] * Vtr[:, :n_in]  # B = S^1/2 V^T E_m, eq. 34
     C = Ur[:n_out] * root[None, :]  # C = E_p^T U S^1/2, eq. 34
     D = mk[0].copy()  # D = Y_0
     return Realisation(A=A, B=B, C=C, D=D, hankel_sv=s, rank=int(rank))

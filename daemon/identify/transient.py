@@ -36,7 +36,7 @@ import numpy as np
 import scipy.linalg
 
 from wingwatch.daemon.errors import IdentificationError
-from wingwatch.daemon.identify.era import Realisation, choose_rank, era
+from wingwatch.daemon.identify.era import HankelFactors, Realisation, choose_rank, era, hankel_factors
 
 __all__ = [
     "TransientFit",
@@ -154,6 +154,36 @@ def _tc_factor(n: int, lam: float) -> np.ndarray:
     return L
 
 
+@functools.lru_cache(maxsize=32)
+def _tc_precision(n: int, lam: float) -> tuple[np.ndarray, np.ndarray, float]:
+    """The TC kernel's inverse (tridiagonal: main and first off-diagonal) and its log-determinant,
+    in closed form.
+
+    ``P_ij = lam^max(i, j) = min(a_i, a_j)`` with ``a_i = lam^i`` decreasing, so in reversed
+    index order ``P`` is the covariance of a Brownian motion sampled at the increasing times
+    ``a_(n-1) < .. < a_0``. Its increments ``e_i = a_i - a_(i+1)`` (``e_(n-1) = a_(n-1)``) are
+    independent, hence ``P^-1 = D^T diag(1 / e) D`` with ``D`` the first-difference matrix, and
+    ``log det P = sum log e_i`` (derived here; checked against ``numpy.linalg.inv`` and
+    ``slogdet`` in tests/test_identify_transient.py).
+    """
+    i = np.arange(n)
+    e = lam ** i * (1.0 - lam)
+    e[-1] = lam ** (n - 1)
+    inv_e = 1.0 / e
+    diag = inv_e.copy()
+    diag[1:] += inv_e[:-1]
+    off = -inv_e[:-1]  # entries (i, i + 1) and (i + 1, i)
+    diag.flags.writeable = False
+    off.flags.writeable = False
+    return diag, off, float(np.sum(np.log(e)))
+
+
+def _tc_precision_dense(n: int, lam: float) -> np.ndarray:
+    """``P^-1`` of :func:`_tc_precision` as a dense matrix (for checks)."""
+    diag, off, _ = _tc_precision(n, lam)
+    return np.diag(diag) + np.diag(off, 1) + np.diag(off, -1)
+
+
 DECAYS = (0.9, 0.95, 0.97, 0.98, 0.99, 0.995)
 SCALES = tuple(10.0 ** np.arange(-8, 3))
 
@@ -179,7 +209,11 @@ def fir_markov(
     per output by maximising the marginal likelihood over the grid, with the noise variance
     taken from an unregularised fit. The estimate is the posterior mean::
 
-        h = c P V^T (c V P V^T + s2 I)^-1 r = L (s2 I + c L^T V^T V L)^-1 c L^T V^T r,  P = L L^T
+        h = c P V^T (c V P V^T + s2 I)^-1 r = (V^T V + (s2 / c) P^-1)^-1 V^T r
+
+    computed in the ``(L + 1)``-dimensional form with the TC kernel's tridiagonal inverse
+    (:func:`_tc_precision`), so each grid point costs one Cholesky factorisation and no kernel
+    products.
 
     Shape diagram, one row per time k = L .. N-1::
 
@@ -203,7 +237,8 @@ def fir_markov(
             f"the window has {n} samples, too few for {n_lags} Markov parameters "
             f"(needs at least {2 * p + n_lags})"
         )
-    V = np.lib.stride_tricks.sliding_window_view(u, p)[:, ::-1]  # [u(k) .. u(k-L)]
+    # [u(k) .. u(k-L)], copied: a product of contiguous arrays is about twice as fast
+    V = np.ascontiguousarray(np.lib.stride_tricks.sliding_window_view(u, p)[:, ::-1])
     R = r[n_lags:]
     G = V.T @ V
     VtR = V.T @ R
@@ -214,9 +249,11 @@ def fir_markov(
     s2 = np.maximum(np.sum((R - V @ h_ls) ** 2, axis=0) / dof, 1e-30)
     base = np.trace(G) / p  # prior scale grid SCALES is in units of var(r) / mean power of u
     out = np.zeros((p, R.shape[1]))
-    chol: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+    K = np.empty_like(G)
     for j in range(R.shape[1]):
         var_r = float(np.var(R[:, j])) or 1.0
+        rr = float(R[:, j] @ R[:, j])
+        b = VtR[:, j]
         best = (np.inf, None, None)
         if hyper is not None and j < len(hyper):
             di, si = hyper[j]
@@ -225,23 +262,28 @@ def fir_markov(
         else:
             d_range, s_range = range(len(DECAYS)), range(len(SCALES))
         for di in d_range:
-            if di not in chol:
-                Lc = _tc_factor(p, DECAYS[di])
-                chol[di] = (Lc, Lc.T @ G @ Lc)
-            Lc, GL = chol[di]
-            b = Lc.T @ VtR[:, j]
+            q_diag, q_off, logdet_p = _tc_precision(p, DECAYS[di])
             for si in s_range:
                 c = SCALES[si] * var_r / max(base, 1e-300)
-                M = s2[j] * np.eye(p) + c * GL  # s2 I + c L^T V^T V L
+                # Posterior precision in the p-dimensional form (Woodbury; matrix determinant
+                # lemma): K = V^T V + (s2 / c) P^-1, P^-1 tridiagonal, so no kernel products.
+                g = s2[j] / c
+                np.copyto(K, G)
+                K.flat[::p + 1] += g * q_diag
+                K.flat[1::p + 1] += g * q_off
+                K.flat[p::p + 1] += g * q_off
                 try:
-                    cf = scipy.linalg.cho_factor(M)
+                    cf = scipy.linalg.cho_factor(K, check_finite=False)
                 except np.linalg.LinAlgError:
                     continue
-                quad = (R[:, j] @ R[:, j] - c * b @ scipy.linalg.cho_solve(cf, b)) / s2[j]
-                logdet = (rows - p) * np.log(s2[j]) + 2.0 * np.sum(np.log(np.diag(cf[0])))
+                h = scipy.linalg.cho_solve(cf, b, check_finite=False)
+                quad = (rr - b @ h) / s2[j]  # r^T (s2 I + c V P V^T)^-1 r
+                # log det(s2 I + c V P V^T) = rows log s2 + log det P + p log(c / s2) + log det K
+                logdet = (rows * np.log(s2[j]) + logdet_p - p * np.log(g)
+                          + 2.0 * np.sum(np.log(np.diag(cf[0]))))
                 nll = 0.5 * (quad + logdet)  # -log p(r | lam, c), up to a constant
                 if nll < best[0]:
-                    best = (nll, Lc @ (c * scipy.linalg.cho_solve(cf, b)), (di, si))
+                    best = (nll, h, (di, si))
         if best[1] is None:  # pragma: no cover - the grid always holds a well-posed point
             raise IdentificationError("no kernel hyperparameter gave a well-posed Markov estimate")
         out[:, j] = best[1]
@@ -369,6 +411,7 @@ class MarkovEstimate:
     decimate: int
     hankel_sv: np.ndarray
     hyper: list | None = None  # kernel hyperparameters chosen, for a warm start next time
+    factors: HankelFactors | None = None  # SVD of the Hankel matrix, shared by every realise()
 
     @property
     def dt_decimated(self) -> float:
@@ -405,8 +448,8 @@ def estimate_markov(u: np.ndarray, r: np.ndarray, rate_hz: float, *, decimate: i
     mk = fir_markov(decimate_mean(u, decimate), decimate_mean(r, decimate), n_lags, hyper=hyper,
                     chosen=chosen)
     rows, cols = n_lags // 2, n_lags - n_lags // 2
-    sv = era(mk, 1, rows, cols).hankel_sv
-    return MarkovEstimate(markov=mk, dt=dt, decimate=decimate, hankel_sv=sv,
+    fac = hankel_factors(mk, rows, cols)
+    return MarkovEstimate(markov=mk, dt=dt, decimate=decimate, hankel_sv=fac.s, factors=fac,
                           hyper=[list(c) for c in chosen])
 
 
@@ -428,8 +471,8 @@ def estimate_markov_joint(u: np.ndarray, F: np.ndarray, y: np.ndarray, rate_hz: 
     je = fir_markov_joint(decimate_mean(u, decimate), decimate_mean(F, decimate),
                           decimate_mean(y, decimate), n_lags, hyper=hyper)
     rows, cols = n_lags // 2, n_lags - n_lags // 2
-    sv = era(je.markov, 1, rows, cols).hankel_sv
-    est = MarkovEstimate(markov=je.markov, dt=dt, decimate=decimate, hankel_sv=sv,
+    fac = hankel_factors(je.markov, rows, cols)
+    est = MarkovEstimate(markov=je.markov, dt=dt, decimate=decimate, hankel_sv=fac.s, factors=fac,
                          hyper=[list(h) for h in je.hyper])
     return est, je
 
@@ -454,7 +497,7 @@ def realise(est: MarkovEstimate, rank: int | None = None, *, max_rank: int = 16,
         raise IdentificationError(f"rank {rank} is outside 1..{est.max_rank} for this window")
     why = ""
     for r_try in range(rank, rank - 1 if fixed else 0, -1):
-        real = era(est.markov, r_try, rows, cols)
+        real = era(est.markov, r_try, rows, cols, factors=est.factors)
         if np.max(np.abs(np.linalg.eigvals(real.A))) >= 1.0:
             why = (f"the rank-{r_try} transient realisation is unstable; the window is too noisy "
                    "or too poorly excited for that rank")
