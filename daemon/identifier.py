@@ -207,6 +207,71 @@ class _Ring:
         return np.concatenate([self.buf[self.head:], self.buf[:self.head]])
 
 
+class _WindowSpread:
+    """Exponentially weighted scatter of the per-window column estimates (one per slow update).
+
+    Each slow-update window's batch estimate of the interpretable columns (``_window_estimate``,
+    in the basis in service then) is close to independent of the others. Their weighted mean,
+    with the fast layer's forgetting per window (``lam = 0.5^(slow_period / half_life)``),
+    estimates the same thing as the RLS columns, and the scatter between windows gives its
+    variance: weighted variance ``v = sum w (x - m)^2 / (W - W2 / W)`` (reliability weights),
+    ``var(m) = v W2 / W^2``, with ``n_eff = W^2 / W2`` windows (Kish). Unlike the covariance of
+    the fast layer, which is conditional on one transient realisation (A, B), this includes what
+    the slow layer's re-realisations move the columns by. Student-t with ``n_eff - 1`` degrees
+    of freedom; nothing until 5 effective windows exist.
+    """
+
+    MIN_WINDOWS = 5.0
+
+    def __init__(self, lam: float) -> None:
+        self.lam = float(lam)
+        self.w = 0.0
+        self.w2 = 0.0
+        self.s1: np.ndarray | None = None
+        self.s2: np.ndarray | None = None
+
+    def add(self, x: np.ndarray) -> None:
+        x = np.asarray(x, dtype=float)
+        if not np.all(np.isfinite(x)):
+            return
+        lam = self.lam
+        if self.s1 is None or self.s1.shape != x.shape:
+            self.s1, self.s2 = np.zeros_like(x), np.zeros_like(x)
+        self.w = lam * self.w + 1.0
+        self.w2 = lam * lam * self.w2 + 1.0
+        self.s1 = lam * self.s1 + x
+        self.s2 = lam * self.s2 + x * x
+
+    @property
+    def n_eff(self) -> float:
+        return self.w * self.w / self.w2 if self.w2 > 0 else 0.0
+
+    def var_of_mean(self) -> np.ndarray | None:
+        if self.s1 is None or self.n_eff < self.MIN_WINDOWS:
+            return None
+        m = self.s1 / self.w
+        v = np.maximum(self.s2 / self.w - m * m, 0.0) * self.w / (self.w - self.w2 / self.w)
+        return v * self.w2 / (self.w * self.w)
+
+    def half_width(self, level: float) -> np.ndarray | None:
+        var = self.var_of_mean()
+        if var is None:
+            return None
+        from scipy.stats import t as student_t  # imported here: scipy.stats is slow to load
+
+        return np.sqrt(var) * student_t.ppf(0.5 + level / 2.0, self.n_eff - 1.0)
+
+    def state_dict(self) -> dict[str, Any]:
+        return {"lam": self.lam, "w": self.w, "w2": self.w2,
+                "s1": None if self.s1 is None else self.s1.copy(),
+                "s2": None if self.s2 is None else self.s2.copy()}
+
+    def load_state_dict(self, st: dict[str, Any]) -> None:
+        self.lam, self.w, self.w2 = float(st["lam"]), float(st["w"]), float(st["w2"])
+        self.s1 = None if st["s1"] is None else np.array(st["s1"], dtype=float).reshape(4, 2)
+        self.s2 = None if st["s2"] is None else np.array(st["s2"], dtype=float).reshape(4, 2)
+
+
 def _pair(v: np.ndarray) -> dict[str, float]:
     return {k: float(x) for k, x in zip(OUTPUT_KEYS, v)}
 
@@ -294,6 +359,7 @@ class OnlineIdentifier:
         self._clear_window()
         self.last_window: dict[str, Any] | None = None
         self.last_block: dict[str, Any] | None = None
+        self.spread = _WindowSpread(0.5 ** (s.slow_period_s / s.half_life_s))
 
     def _new_rls(self, theta0: np.ndarray) -> RecursiveLeastSquares:
         s = self.settings
@@ -392,6 +458,8 @@ class OnlineIdentifier:
         if self.since_slow >= self.slow_n:
             self.since_slow = 0
             self.last_window = self._window_estimate()
+            if self.last_window is not None:
+                self.spread.add(self.last_window["interpretable"])
             outputs.extend(self._slow_update())
             self.rate_sq, self.rate_n = 0.0, 0
             self._clear_window()
@@ -608,6 +676,12 @@ class OnlineIdentifier:
     def _coefficients(self, rls: RecursiveLeastSquares) -> tuple[dict, dict]:
         th = rls.theta
         lo, hi = rls.intervals(0.95)
+        half = self.spread.half_width(0.95)  # rows: quasi-steady, rate, added mass, bias
+        if half is not None:
+            lo, hi = lo.copy(), hi.copy()
+            for i, r in enumerate((0, 1, 2, -1)):
+                h = np.maximum(half[i], (hi[r] - lo[r]) / 2.0)
+                lo[r], hi[r] = th[r] - h, th[r] + h
         rows = {"quasi_steady": 0, "rate": 1, "added_mass": 2, "bias": -1}
         coef = {k: _pair(th[i]) for k, i in rows.items()}
         intervals = {k: {o: [float(lo[i, j]), float(hi[i, j])] for j, o in enumerate(OUTPUT_KEYS)}
@@ -709,6 +783,7 @@ class OnlineIdentifier:
             "rate_sq": self.rate_sq, "rate_n": self.rate_n,
             "win": [self.win_G.copy(), self.win_b.copy(), self.win_yy.copy(), self.win_n],
             "last_window": None if self.last_window is None else dict(self.last_window),
+            "spread": self.spread.state_dict(),
             "in_service": self.in_service,
             "job": None if self.job is None else {
                 "job": dict(self.job["job"]), "elapsed": self.job["elapsed"],
@@ -764,6 +839,7 @@ class OnlineIdentifier:
         self.last_window = None if lw is None else {
             k: (np.asarray(v, dtype=float) if k in ("theta", "se", "s2", "interpretable") else v)
             for k, v in lw.items()}
+        self.spread.load_state_dict(st["spread"])
         self.in_service = st["in_service"]
         jb = st.get("job")  # a candidate in flight is recomputed from its snapshot when due
         if jb is not None:

@@ -84,6 +84,19 @@ def test_same_seed_gives_identical_frames_and_another_seed_does_not(faults):
     assert not np.array_equal(a[1], c[1], equal_nan=True)
 
 
+def test_motion_seed_fixes_the_manoeuvre_and_leaves_the_noise_to_the_seed(faults):
+    a = collect(VirtualRig(faults, seed=5, motion_seed=7))
+    b = collect(VirtualRig(faults, seed=6, motion_seed=7))
+    c = collect(VirtualRig(faults, seed=5, motion_seed=8))
+    assert_array_equal(a[2]["alpha"], b[2]["alpha"])  # the same manoeuvre
+    assert not np.array_equal(a[1], b[1], equal_nan=True)  # other sensor noise
+    assert not np.array_equal(a[2]["alpha"], c[2]["alpha"])
+    d = collect(VirtualRig(faults, seed=5))  # without it, the motion comes from the seed
+    assert not np.array_equal(a[2]["alpha"], d[2]["alpha"])
+    with pytest.raises(Exception, match="motion_seed"):
+        VirtualRig(faults, motion_seed=-1)
+
+
 def test_frame_length_does_not_change_any_value(faults):
     # frame length 7 puts the internal blocks on other boundaries; the run must be the same
     sc = load_scenario(faults)

@@ -296,11 +296,16 @@ class VirtualRig:
         prescribed motion only.
     servo : ServoSpec, optional
         The pitch actuator followed under ``command`` (default :class:`ServoSpec`).
+    motion_seed : int, optional
+        Seed of the prescribed motion alone (the random-pitching phases): runs with one
+        ``motion_seed`` and different ``seed`` fly the same manoeuvre with different sensor
+        noise (Monte Carlo over the noise only). None: both come from ``seed``.
     """
 
     def __init__(self, scenario: Scenario | str | Path, seed: int | None = None,
                  rate_hz: float | None = None, duration_s: float | None = None,
-                 command: PitchCommand | None = None, servo: ServoSpec | None = None) -> None:
+                 command: PitchCommand | None = None, servo: ServoSpec | None = None,
+                 motion_seed: int | None = None) -> None:
         if command is not None and not callable(getattr(command, "alpha_at", None)):
             raise ConfigError("command must have a method alpha_at(t) returning an angle in rad or None")
         if servo is not None and not isinstance(servo, ServoSpec):
@@ -312,6 +317,10 @@ class VirtualRig:
             if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
                 raise ConfigError(f"seed must be a non-negative integer, not {seed!r}")
             sc = replace(sc, seed=seed)
+        if motion_seed is not None and (isinstance(motion_seed, bool) or not isinstance(motion_seed, int)
+                                        or motion_seed < 0):
+            raise ConfigError(f"motion_seed must be a non-negative integer, not {motion_seed!r}")
+        self.motion_seed = motion_seed
         if rate_hz is not None:
             if not (isinstance(rate_hz, (int, float)) and math.isfinite(rate_hz) and 1.0 <= rate_hz <= 1e5):
                 raise ConfigError(f"rate_hz must be a sample rate in [1, 100000] Hz, not {rate_hz!r}")
@@ -355,6 +364,8 @@ class VirtualRig:
         sc = self.scenario
         ss = np.random.SeedSequence(sc.seed)
         motion_ss, sensor_ss = ss.spawn(2)
+        if self.motion_seed is not None:
+            motion_ss = np.random.SeedSequence(self.motion_seed).spawn(2)[0]
         creep = [Ramp(e.t_s, e.get("duration_s"), e.get("rate_deg_per_s") * e.get("duration_s"))
                  for e in sc.events if e.kind == "pitch-creep"]
         motion = Motion(sc.motion, np.random.default_rng(motion_ss), creep)

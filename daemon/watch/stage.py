@@ -79,7 +79,7 @@ WATCH_DEFAULTS: dict[str, Any] = {
     "noise_ratio": 3.0,
     "baseline_s": 60.0,
     "rearm_s": 30.0,
-    "watch_rate_and_added_mass": 0.0,
+    "watch_rate_and_added_mass": 1.0,
     "zero_shift_tolerance": 0.0005,
     "zero_shift_witness_alpha": 0.001,
 }
