@@ -16,7 +16,7 @@ from wingwatch.daemon.codec import decode_message
 from wingwatch.daemon.config import load_config
 from wingwatch.daemon.replaylog import KIND_WARNING, KIND_WATCH
 from wingwatch.daemon.watch.margin import MarginForecaster
-from wingwatch.daemon.watch.stage import flutter_margin
+from wingwatch.daemon.watch.stage import flutter_margin, flutter_onset_q
 from wingwatch.daemon.watch.warnings import WarningBook
 
 
@@ -62,6 +62,48 @@ def test_flutter_margin_vanishes_at_flutter():
     # F -> 0 when one mode's damping reaches zero (Zimmerman & Weissenburger 1964)
     assert flutter_margin(0.0, 2.0, 0.3, 3.0) == pytest.approx(0.0, abs=1e-12)
     assert flutter_margin(1e-3, 2.0, 0.3, 3.0) > 0
+
+
+def _binary_section_modes(U):
+    """Plunge-pitch typical section with quasi-steady lift (lift slope 2 pi on a chord 0.5,
+    lift 0.1 ahead of the axis, 1 % structural damping; invented numbers): its two modes as
+    s = -b +- i w, lower frequency first, and the dynamic pressure."""
+    import scipy.linalg  # noqa: F401
+
+    qd = 0.5 * U * U
+    M = np.array([[1.0, 0.05], [0.05, 0.02]])
+    K = np.diag([40.0, 10.0])
+    Ka = qd * 0.5 * 2 * np.pi * np.array([[0.0, 1.0], [0.0, -0.1]])
+    Ca = qd * 0.5 * 2 * np.pi / U * np.array([[1.0, 0.0], [-0.1, 0.0]])
+    Cs = 0.01 * K / np.sqrt(np.diag(K)).mean()
+    Mi = np.linalg.inv(M)
+    A = np.block([[np.zeros((2, 2)), np.eye(2)], [-Mi @ (K + Ka), -Mi @ (Cs + Ca)]])
+    lam = np.linalg.eigvals(A)
+    lam = lam[lam.imag > 0]
+    lam = lam[np.argsort(lam.imag)]
+    return -lam.real, lam.imag, qd
+
+
+def test_flutter_onset_extrapolated_from_subcritical_points_matches_the_eigenvalues():
+    """Reference: the flutter speed of the section from its eigenvalues (numpy.linalg.eigvals,
+    the largest real part crossing zero, scipy.optimize.brentq). The Zimmerman-Weissenburger
+    margin from points up to 56 % of the flutter dynamic pressure, extrapolated as a quadratic
+    in dynamic pressure, must land within 5 % of it."""
+    import scipy.optimize
+
+    Uf = scipy.optimize.brentq(lambda U: -np.min(_binary_section_modes(U)[0]), 1.0, 30.0)
+    qf = 0.5 * Uf * Uf
+    q, F = [], []
+    for U in np.linspace(0.4 * Uf, 0.75 * Uf, 10):
+        b, w, qd = _binary_section_modes(U)
+        q.append(qd)
+        F.append(flutter_margin(b[0], w[0], b[1], w[1]))
+    assert np.all(np.diff(F) < 0)  # the margin falls toward flutter
+    assert flutter_onset_q(q, F) == pytest.approx(qf, rel=0.05)
+    # not enough spread in q, too few points, or a margin that rises: no extrapolation
+    assert math.isnan(flutter_onset_q([q[0]] * 10, F))
+    assert math.isnan(flutter_onset_q(q[:5], F[:5]))
+    assert math.isnan(flutter_onset_q(q, F[::-1]))
 
 
 def test_margin_forecast_hold_and_plan():
@@ -353,3 +395,40 @@ def test_creep_toward_the_limit_warns_at_least_1_s_ahead(tmp_path, reference):
     assert margin, warns
     assert margin[0]["t"] <= t_cross - 1.0
     assert all("advisory" in w["message"].lower() for w in margin)
+
+
+def test_watcher_raises_the_flutter_advisory_from_the_model_in_service():
+    """Two oscillatory modes of the section's model in service at rising dynamic pressure:
+    the watcher tracks their margin and raises an advisory once the extrapolated flutter point
+    is within damping_q_margin (1.5) of the present dynamic pressure; a state round trip keeps
+    the history."""
+    import scipy.optimize
+
+    from wingwatch.daemon.identifier import OnlineIdentifier
+    from wingwatch.daemon.watch.stage import Watcher
+
+    cfg = load_config()
+    w = Watcher(cfg, OnlineIdentifier(cfg))
+    Uf = scipy.optimize.brentq(lambda U: -np.min(_binary_section_modes(U)[0]), 1.0, 30.0)
+    raised, q_at = None, []
+    for i, U in enumerate(np.linspace(0.4 * Uf, 0.85 * Uf, 16)):
+        b, wd, qd = _binary_section_modes(U)
+        wn = np.hypot(b, wd)
+        modes = [{"id": 1 + j, "freq_hz": float(wn[j] / (2 * np.pi)), "damping": float(b[j] / wn[j])}
+                 for j in range(2)]
+        w.ident.in_service = {"model_id": f"M{i:06d}", "modes": modes}
+        w.q_recent = qd
+        q_at.append(qd)
+        ev = [o.body for o in w._flutter(float(i))]
+        if i == 9:
+            st = w.state_dict()
+        if ev and raised is None:
+            raised = ev[0]
+    assert raised is not None and raised["event"] == "raised" and raised["level"] == "advisory"
+    assert raised["warning_kind"] == "damping_trend" and "advisory" in raised["message"].lower()
+    assert raised["value"] == pytest.approx(0.5 * Uf * Uf, rel=0.05)  # the flutter dynamic pressure
+    assert raised["value"] < 1.5 * q_at[int(raised["t"])]
+    assert w.flutter["modes"] == [1, 2]
+    w2 = Watcher(cfg, OnlineIdentifier(cfg))
+    w2.load_state_dict(st)
+    assert len(w2.flutter_hist) == 10 and w2.flutter_pair == [1, 2]

@@ -19,9 +19,11 @@ the window estimate of every slow update, the aligned samples of every block). D
   against the reference within relative tolerances, same CUSUM treatment; and a damping trend:
   damping regressed on dynamic pressure over the recent updates, extrapolated to zero damping
   (the dynamic pressure at which the mode would lose its damping), advisory when the
-  extrapolation falls within ``watch.damping_q_margin`` times the present dynamic pressure. The
-  Zimmerman-Weissenburger flutter margin (J. Aircraft 1(4), 1964) is reported when two modes are
-  tracked (:func:`flutter_margin`).
+  extrapolation falls within ``watch.damping_q_margin`` times the present dynamic pressure.
+  When the model in service has two oscillatory modes, the Zimmerman-Weissenburger flutter
+  margin of the two closest in frequency (J. Aircraft 1(4), 1964; :func:`flutter_margin`) is
+  tracked against dynamic pressure and extrapolated to zero (:func:`flutter_onset_q`), with
+  the same advisory rule.
 - **Stale model**: the reference model (the one the controller started with) run on the live
   data; the ratio of its prediction residual rms over each slow-update window to its residual
   level at calibration; "the controller's model no longer fits" when the ratio stays above
@@ -61,7 +63,7 @@ from wingwatch.daemon.watch.cusum import Cusum, threshold_for_arl
 from wingwatch.daemon.watch.margin import MarginForecaster
 from wingwatch.daemon.watch.warnings import WarningBook
 
-__all__ = ["WatchSettings", "Watcher", "flutter_margin", "WATCH_DEFAULTS"]
+__all__ = ["WatchSettings", "Watcher", "flutter_margin", "flutter_onset_q", "WATCH_DEFAULTS"]
 
 WATCH_DEFAULTS: dict[str, Any] = {
     "period_s": 0.5,
@@ -115,6 +117,35 @@ def flutter_margin(b1: float, w1: float, b2: float, w2: float) -> float:
     return ((d + (b2 * b2 - b1 * b1) / 2.0) ** 2
             + 4.0 * b1 * b2 * ((w2 * w2 + w1 * w1) / 2.0 + 2.0 * bs * bs)
             - ((b2 - b1) / (b2 + b1) * d + 2.0 * bs * bs) ** 2)
+
+
+def flutter_onset_q(q, F, min_points: int = 8) -> float:
+    """Dynamic pressure at which the flutter margin ``F`` extrapolates to zero, or nan.
+
+    ``F`` is fitted as a quadratic in the dynamic pressure ``q`` (for a two-degree-of-freedom
+    system Zimmerman and Weissenburger show that it is one; from memory) by least squares
+    (``numpy.polyfit``, on scaled values), and the smallest real root above the largest ``q``
+    seen is returned. Nan with fewer than ``min_points`` points, when ``q`` has varied by less
+    than 5 % of its mean, when the fit does not fall at the largest ``q``, or when it has no root
+    ahead. Checked in tests/test_watch.py against the flutter point of a binary section found
+    from its eigenvalues.
+    """
+    q = np.asarray(q, dtype=float)
+    F = np.asarray(F, dtype=float)
+    ok = np.isfinite(q) & np.isfinite(F)
+    q, F = q[ok], F[ok]
+    if q.size < min_points or np.ptp(q) <= 0.05 * max(float(np.mean(np.abs(q))), 1e-12):
+        return float("nan")
+    qs = float(np.max(np.abs(q)))
+    fs = float(np.max(np.abs(F))) or 1.0
+    c2, c1, c0 = np.polyfit(q / qs, F / fs, 2)
+    x_top = float(np.max(q)) / qs
+    if 2.0 * c2 * x_top + c1 >= 0.0:
+        return float("nan")  # the margin is not falling as dynamic pressure rises
+    roots = np.roots([c2, c1, c0]) if c2 != 0.0 else np.array([-c0 / c1])
+    ahead = [float(r.real) for r in np.atleast_1d(roots)
+             if abs(r.imag) <= 1e-9 * max(abs(r.real), 1.0) and r.real > x_top]
+    return min(ahead) * qs if ahead else float("nan")
 
 
 @dataclass(frozen=True)
@@ -223,6 +254,9 @@ class Watcher:
         self.gauge_suspect = False
         self.zero_info: dict[str, Any] = {}
         self.damp_hist: list[tuple[float, float]] = []  # (dynamic pressure, damping)
+        self.flutter_hist: list[tuple[float, float]] = []  # (dynamic pressure, flutter margin)
+        self.flutter_pair: list[int] | None = None  # mode ids of the pair in flutter_hist
+        self.flutter: dict[str, Any] | None = None  # last flutter-margin state (watch message)
         self.plan: tuple[float, float, np.ndarray] | None = None
         self.q_recent = float("nan")
         self.base: np.ndarray | None = None  # coefficient baseline (start of the run)
@@ -372,6 +406,7 @@ class Watcher:
                                     f"Sensor {st['detail'] or name}; check the channel (advisory).")
         # mode drift and damping trend
         out += self._modes(t)
+        out += self._flutter(t)
         return out
 
     def _window_fit(self, basis: FrozenBasisWindow) -> np.ndarray | None:
@@ -664,6 +699,42 @@ class Watcher:
                                 f"damping at {q_zero:.0f} Pa (advisory).")
         return out
 
+    def _flutter(self, t: float) -> list[Output]:
+        """Zimmerman-Weissenburger margin of the two oscillatory modes closest in frequency in
+        the model in service, against dynamic pressure, extrapolated to zero. Oscillatory here:
+        damping ratio below 0.9 (common practice, no source: the aerodynamic damping of a
+        plunge-like mode is large well before flutter, so the drift watch's 0.3 would drop it)."""
+        s = self.settings
+        m = self.ident.in_service
+        modes = [x for x in (m.get("modes") or [] if m else [])
+                 if 0.0 < x["damping"] < 0.9 and x["freq_hz"] > 0.0]
+        if len(modes) < 2 or not math.isfinite(self.q_recent):
+            self.flutter = None
+            return []
+        modes.sort(key=lambda x: x["freq_hz"])
+        k = int(np.argmin(np.diff([x["freq_hz"] for x in modes])))
+        m1, m2 = modes[k], modes[k + 1]
+        pair = [int(m1["id"]), int(m2["id"])]
+        if pair != self.flutter_pair:  # another pair: its history starts afresh
+            self.flutter_pair, self.flutter_hist = pair, []
+        bw = []
+        for x in (m1, m2):
+            wn = 2.0 * math.pi * x["freq_hz"]
+            bw += [x["damping"] * wn, wn * math.sqrt(1.0 - x["damping"] ** 2)]  # s = -b +- i w
+        F = flutter_margin(*bw)
+        self.flutter_hist = (self.flutter_hist + [(self.q_recent, F)])[-30:]
+        arr = np.array(self.flutter_hist)
+        q_zero = flutter_onset_q(arr[:, 0], arr[:, 1])
+        self.flutter = {"modes": pair, "margin": F, "zero_q_pa": q_zero, "q_pa": self.q_recent}
+        level = ("advisory" if math.isfinite(q_zero) and q_zero < s.damping_q_margin * self.q_recent
+                 else None)
+        return self.book.report(
+            "damping_trend:flutter_margin", "damping_trend", "flutter_zero_q_pa", level,
+            q_zero if math.isfinite(q_zero) else 0.0, s.damping_q_margin * self.q_recent, t,
+            self.model_id,
+            f"Modes {pair[0]} and {pair[1]} approach each other as dynamic pressure rises; the "
+            f"flutter margin extrapolates to zero at {q_zero:.0f} Pa (advisory).")
+
     def _margin_warnings(self, t: float) -> list[Output]:
         s = self.settings
         plan = self.plan
@@ -713,6 +784,7 @@ class Watcher:
             "t": t, "model_id": self.model_id, "margin": fc, "drift": drift,
             "stale": dict(self.stale), "sensors": sensors,
             "baseline_offset": dict(self.base_offset),
+            "flutter": None if self.flutter is None else dict(self.flutter),
         })
 
     # ----------------------------------------------------------------------------------------
@@ -736,6 +808,8 @@ class Watcher:
             "zero_info": {k: (dict(v) if isinstance(v, dict) else v)
                           for k, v in self.zero_info.items()},
             "damp_hist": list(self.damp_hist), "q_recent": self.q_recent,
+            "flutter_hist": list(self.flutter_hist), "flutter_pair": self.flutter_pair,
+            "flutter": None if self.flutter is None else dict(self.flutter),
             "base": None if self.base is None else self.base.copy(),
             "base_level": None if self.base_level is None else self.base_level.copy(),
             "base_level_sd": None if self.base_level_sd is None else self.base_level_sd.copy(),
@@ -780,6 +854,11 @@ class Watcher:
         self.zero_info = {k: (dict(v) if isinstance(v, dict) else v)
                           for k, v in st["zero_info"].items()}
         self.damp_hist = [tuple(x) for x in st["damp_hist"]]
+        self.flutter_hist = [tuple(x) for x in st.get("flutter_hist", [])]
+        fp = st.get("flutter_pair")
+        self.flutter_pair = None if fp is None else [int(i) for i in fp]
+        fl = st.get("flutter")
+        self.flutter = None if fl is None else dict(fl)
         self.q_recent = float(st["q_recent"])
         self.base = None if st["base"] is None else np.array(st["base"], dtype=float)
         self.base_level = (None if st["base_level"] is None
