@@ -839,7 +839,8 @@ class OnlineIdentifier:
         self.last_window = None if lw is None else {
             k: (np.asarray(v, dtype=float) if k in ("theta", "se", "s2", "interpretable") else v)
             for k, v in lw.items()}
-        self.spread.load_state_dict(st["spread"])
+        if st.get("spread") is not None:  # absent in a checkpoint of an earlier version
+            self.spread.load_state_dict(st["spread"])
         self.in_service = st["in_service"]
         jb = st.get("job")  # a candidate in flight is recomputed from its snapshot when due
         if jb is not None:
