@@ -262,12 +262,13 @@ class _WindowSpread:
         return np.sqrt(var) * student_t.ppf(0.5 + level / 2.0, self.n_eff - 1.0)
 
     def state_dict(self) -> dict[str, Any]:
-        return {"lam": self.lam, "w": self.w, "w2": self.w2,
+        # lam is not state: it follows the configuration (slow period, half-life)
+        return {"w": self.w, "w2": self.w2,
                 "s1": None if self.s1 is None else self.s1.copy(),
                 "s2": None if self.s2 is None else self.s2.copy()}
 
     def load_state_dict(self, st: dict[str, Any]) -> None:
-        self.lam, self.w, self.w2 = float(st["lam"]), float(st["w"]), float(st["w2"])
+        self.w, self.w2 = float(st["w"]), float(st["w2"])
         self.s1 = None if st["s1"] is None else np.array(st["s1"], dtype=float).reshape(4, 2)
         self.s2 = None if st["s2"] is None else np.array(st["s2"], dtype=float).reshape(4, 2)
 

@@ -277,7 +277,7 @@ def test_window_spread_survives_a_restart_and_skips_non_finite_windows():
     before = a.half_width(0.95).copy()
     a.add(np.full((4, 2), np.nan))  # a window with no estimate changes nothing
     np.testing.assert_array_equal(a.half_width(0.95), before)
-    b = _WindowSpread(0.5)
+    b = _WindowSpread(0.9)
     b.load_state_dict(a.state_dict())
     x = rng.standard_normal((4, 2))
     a.add(x)

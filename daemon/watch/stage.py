@@ -142,8 +142,8 @@ def flutter_onset_q(q, F, min_points: int = 8) -> float:
     x_top = float(np.max(q)) / qs
     if 2.0 * c2 * x_top + c1 >= 0.0:
         return float("nan")  # the margin is not falling as dynamic pressure rises
-    roots = np.roots([c2, c1, c0]) if c2 != 0.0 else np.array([-c0 / c1])
-    ahead = [float(r.real) for r in np.atleast_1d(roots)
+    roots = np.roots([c2, c1, c0])  # drops a zero leading coefficient itself (linear fit)
+    ahead = [float(r.real) for r in roots
              if abs(r.imag) <= 1e-9 * max(abs(r.real), 1.0) and r.real > x_top]
     return min(ahead) * qs if ahead else float("nan")
 
