@@ -21,6 +21,10 @@ The model is the calibration's (``daemon/calibrate.py``)::
   with the same rank by the state transformation that maps the old states onto the new ones over
   the window (least squares) and :meth:`RecursiveLeastSquares.transform`, so nothing learned is
   lost; with a new rank, by refitting the estimator over the window.
+- **Intervals**: the fast layer's autocorrelation-robust ones, the scatter of per-window
+  estimates (:class:`_WindowSpread`), and, in quadrature, the spread of the columns over
+  realisations of posterior draws of the Markov parameters (:meth:`_realisation_spread`);
+  docs/identification.md.
 - **Validity gate**: a candidate is published to the controller only when it is finite, stable
   with margin, predicts the recent window (a-priori, one-step errors of the fast layer) within
   ``max_nrmse``, has coefficients within physical bounds and has seen enough excitation. A
@@ -48,7 +52,9 @@ from wingwatch.daemon.identify.differentiate import DelayLine, SavgolDifferentia
 from wingwatch.daemon.identify.interpretable import simulate_states
 from wingwatch.daemon.identify.modes import ModeTracker, modal_parameters
 from wingwatch.daemon.identify.rls import RecursiveLeastSquares
-from wingwatch.daemon.identify.transient import estimate_markov, realise
+from wingwatch.daemon.identify.era import era, hankel_factors_near
+from wingwatch.daemon.identify.transient import (estimate_markov, markov_draws, realise,
+                                                 resample_realisation)
 from wingwatch.daemon.modelfile import COEFFICIENT_KEYS, OUTPUT_KEYS, ReferenceModel, load_model
 from wingwatch.daemon.pipeline import Output
 
@@ -75,7 +81,15 @@ IDENTIFY_DEFAULTS: dict[str, Any] = {
     "min_rate_rms_deg_s": 0.3,
     "max_spectral_radius": 0.99999,
     "qs_lift_bounds": [0.0, 12.6],
+    "realisation_draws": 8,
+    "realisation_every": 5,
 }
+
+#: Two-sided 95 % normal quantile (statistics.NormalDist().inv_cdf(0.975)).
+_Z975 = 1.9599639845400536
+
+#: Whole-number keys for which 0 is allowed (it turns the feature off).
+_ZERO_OK_INTS = ("realisation_draws",)
 
 
 @dataclass(frozen=True)
@@ -99,6 +113,8 @@ class IdentifySettings:
     min_rate_rms_deg_s: float
     max_spectral_radius: float
     qs_lift_bounds: tuple[float, float]
+    realisation_draws: int
+    realisation_every: int
 
     @classmethod
     def from_config(cls, config: Config) -> "IdentifySettings":
@@ -123,8 +139,10 @@ class IdentifySettings:
                     raise ConfigError(f"{where}: key {key} must be [low, high] with low < high.")
                 v = (float(v[0]), float(v[1]))
             elif isinstance(default, int) and not isinstance(default, bool):
-                if isinstance(v, bool) or not isinstance(v, int) or v < 1:
-                    raise ConfigError(f"{where}: key {key} must be a whole number of at least 1.")
+                least = 0 if k in _ZERO_OK_INTS else 1
+                if isinstance(v, bool) or not isinstance(v, int) or v < least:
+                    raise ConfigError(f"{where}: key {key} must be a whole number of at least "
+                                      f"{least}.")
             else:
                 finite_ok = math.isfinite(v) if isinstance(v, (int, float)) else False
                 if k == "half_life_s" and isinstance(v, float) and v == math.inf:
@@ -361,6 +379,7 @@ class OnlineIdentifier:
         self.last_window: dict[str, Any] | None = None
         self.last_block: dict[str, Any] | None = None
         self.spread = _WindowSpread(0.5 ** (s.slow_period_s / s.half_life_s))
+        self.realisation_sd: np.ndarray | None = None  # (3, 2): see _realisation_spread
 
     def _new_rls(self, theta0: np.ndarray) -> RecursiveLeastSquares:
         s = self.settings
@@ -564,6 +583,8 @@ class OnlineIdentifier:
         if res is not None:
             self.markov_hyper, self.rank_proposal = res["hyper"], res["proposal"]
             A_new, B_new, rls_new, x_new, hsv = res["A"], res["B"], res["rls"], res["x"], res["hsv"]
+            if res.get("draw_sd") is not None:  # a property of the recent data, gate or not
+                self.realisation_sd = res["draw_sd"]
             for item in pending["catchup"]:  # what the fast layer saw since the snapshot
                 if item is None:  # a discontinuity: the transient state restarts
                     x_new = np.zeros(A_new.shape[0])
@@ -584,9 +605,12 @@ class OnlineIdentifier:
 
     def _snapshot_job(self) -> dict[str, Any]:
         """What the slow layer needs, copied at the slow-update boundary (see :meth:`_realise`)."""
+        s = self.settings
+        draws = s.realisation_draws > 0 and self.candidate_seq % s.realisation_every == 0
         return {"W": self.ring.view(), "rls": self.rls.state_dict(), "A": self.A.copy(),
                 "B": self.B.copy(), "rank_proposal": self.rank_proposal,
-                "hyper": self.markov_hyper}
+                "hyper": self.markov_hyper,
+                "draw_seed": self.candidate_seq + 1 if draws else None}
 
     def _realise(self, job: dict[str, Any]) -> dict[str, Any]:
         """The slow layer's work on a snapshot: Markov parameters, ERA, basis transfer or refit.
@@ -643,9 +667,60 @@ class OnlineIdentifier:
             step = 1000
             for k in range(0, a.size, step):
                 rls_new.update(phi[k:k + step], dy[k:k + step])
+        draw_sd = None
+        if job.get("draw_seed") is not None:
+            draw_sd = self._realisation_spread(est, r_new, W, job["draw_seed"])
         # The state at the end of the window: where the data of the snapshot end.
         return {"A": A_new, "B": B_new, "rls": rls_new, "x": x_end, "hsv": tf.hankel_sv,
-                "proposal": proposal, "hyper": est.hyper}
+                "proposal": proposal, "hyper": est.hyper, "draw_sd": draw_sd}
+
+    def _realisation_spread(self, est, rank: int, W: np.ndarray, seed: int) -> np.ndarray | None:
+        """How much the interpretable columns depend on which transient the window's data
+        realise: their standard deviation over draws of the Markov parameters from the TC
+        posterior (:func:`markov_draws`), each realised by ERA at the candidate's rank, carried
+        to the sample rate, and the columns refitted under it by least squares on the window
+        (the fast layer's regression, without forgetting). Shape ``(3, 2)``: quasi-steady,
+        rate, added mass by output.
+
+        The fast layer's intervals are conditional on one realisation; the spread of the columns
+        over realisations is the other term of the law of total variance, ``var = E[var | real]
+        + var(E[columns | real])``. Deterministic: the draws come from a generator seeded with
+        the candidate's sequence number. Draws whose realisation is unstable or has no
+        continuous-time form are left out (at high noise and rank, half of them or more); None
+        when fewer than a quarter (at least 3) are left.
+        """
+        s = self.settings
+        rows, cols = est.hankel_shape
+        if est.factors is None or rank < 1 or rank > len(est.factors.s) - 2:
+            return None
+        F = np.column_stack([W[:, 0], W[:, 1], W[:, 2], np.ones(W.shape[0])])
+        dy = W[:, 3:5]
+        FF, Fy = F.T @ F, F.T @ dy  # the fixed part of the normal equations
+        rng = np.random.Generator(np.random.PCG64(seed))
+        betas = []
+        for mk in markov_draws(est, s.realisation_draws, rng):
+            try:
+                fac = hankel_factors_near(mk, rank, est.factors)
+                real = era(mk, rank, rows, cols, factors=fac)
+                if not np.all(np.isfinite(real.A)) or np.max(np.abs(np.linalg.eigvals(real.A))) >= 1.0:
+                    continue
+                A, B = resample_realisation(real.A, real.B, est.dt_decimated, est.dt)
+            except (IdentificationError, np.linalg.LinAlgError):
+                continue
+            X, _ = simulate_states(A, B[:, 0], W[:, 1], chunk=128, cache=False)
+            XF = X.T @ F
+            G = np.block([[FF, XF.T], [XF, X.T @ X]])
+            rhs = np.vstack([Fy, X.T @ dy])
+            d = np.sqrt(np.maximum(np.diag(G), 1e-300))  # column scaling, as in _state_map
+            try:
+                beta = np.linalg.solve(G / d[:, None] / d[None, :], rhs / d[:, None]) / d[:, None]
+            except np.linalg.LinAlgError:
+                continue
+            if np.all(np.isfinite(beta)):
+                betas.append(beta[:3])
+        if len(betas) < max(3, s.realisation_draws // 4):
+            return None
+        return np.std(np.array(betas), axis=0, ddof=1)
 
     def _gate(self, A: np.ndarray, rls: RecursiveLeastSquares) -> str:
         s = self.settings
@@ -678,11 +753,16 @@ class OnlineIdentifier:
         th = rls.theta
         lo, hi = rls.intervals(0.95)
         half = self.spread.half_width(0.95)  # rows: quasi-steady, rate, added mass, bias
-        if half is not None:
-            lo, hi = lo.copy(), hi.copy()
-            for i, r in enumerate((0, 1, 2, -1)):
-                h = np.maximum(half[i], (hi[r] - lo[r]) / 2.0)
-                lo[r], hi[r] = th[r] - h, th[r] + h
+        lo, hi = lo.copy(), hi.copy()
+        for i, r in enumerate((0, 1, 2, -1)):
+            h = (hi[r] - lo[r]) / 2.0
+            if half is not None:
+                h = np.maximum(half[i], h)
+            if self.realisation_sd is not None and r >= 0:
+                # law of total variance: the conditional interval and the spread over
+                # realisations add in quadrature (normal quantile for the latter)
+                h = np.hypot(h, _Z975 * self.realisation_sd[r])
+            lo[r], hi[r] = th[r] - h, th[r] + h
         rows = {"quasi_steady": 0, "rate": 1, "added_mass": 2, "bias": -1}
         coef = {k: _pair(th[i]) for k, i in rows.items()}
         intervals = {k: {o: [float(lo[i, j]), float(hi[i, j])] for j, o in enumerate(OUTPUT_KEYS)}
@@ -785,6 +865,7 @@ class OnlineIdentifier:
             "win": [self.win_G.copy(), self.win_b.copy(), self.win_yy.copy(), self.win_n],
             "last_window": None if self.last_window is None else dict(self.last_window),
             "spread": self.spread.state_dict(),
+            "realisation_sd": None if self.realisation_sd is None else self.realisation_sd.copy(),
             "in_service": self.in_service,
             "job": None if self.job is None else {
                 "job": dict(self.job["job"]), "elapsed": self.job["elapsed"],
@@ -842,6 +923,8 @@ class OnlineIdentifier:
             for k, v in lw.items()}
         if st.get("spread") is not None:  # absent in a checkpoint of an earlier version
             self.spread.load_state_dict(st["spread"])
+        rsd = st.get("realisation_sd")
+        self.realisation_sd = None if rsd is None else np.array(rsd, dtype=float).reshape(3, 2)
         self.in_service = st["in_service"]
         jb = st.get("job")  # a candidate in flight is recomputed from its snapshot when due
         if jb is not None:
@@ -850,7 +933,8 @@ class OnlineIdentifier:
                 "job": {"W": np.asarray(j["W"], dtype=float), "rls": j["rls"],
                         "A": np.asarray(j["A"], dtype=float).reshape(np.shape(j["A"])),
                         "B": np.asarray(j["B"], dtype=float).reshape(np.shape(j["A"])[0], 1),
-                        "rank_proposal": int(j["rank_proposal"]), "hyper": j["hyper"]},
+                        "rank_proposal": int(j["rank_proposal"]), "hyper": j["hyper"],
+                        "draw_seed": None if j.get("draw_seed") is None else int(j["draw_seed"])},
                 "elapsed": int(jb["elapsed"]),
                 "catchup": [None if c is None else (np.asarray(c[0], float), np.asarray(c[1], float),
                                                     np.asarray(c[2], float), np.asarray(c[3], float),

@@ -283,3 +283,47 @@ def test_window_spread_survives_a_restart_and_skips_non_finite_windows():
     a.add(x)
     b.add(x)
     np.testing.assert_array_equal(a.half_width(0.95), b.half_width(0.95))
+
+
+def test_realisation_spread_follows_the_markov_posterior_and_widens_the_intervals(monkeypatch):
+    """The columns' spread over posterior draws of the Markov parameters. For small draws the
+    columns are a smooth function of the Markov parameters, so their spread is linear in the
+    posterior standard deviation (delta method, from memory): scaling the posterior variance
+    by 4 doubles it (within 15 %), and a posterior of zero width gives no spread. The
+    published half-width is at least 1.96 times it (quadrature with the conditional interval);
+    without draws there is no spread and the intervals are narrower."""
+    import dataclasses as dc
+
+    calls = []
+    orig = OnlineIdentifier._realisation_spread
+
+    def spy(self, est, rank, W, seed):
+        calls.append((self, est, rank, W, seed))
+        return orig(self, est, rank, W, seed)
+
+    monkeypatch.setattr(OnlineIdentifier, "_realisation_spread", spy)
+    n = 30000
+    alpha, ad, add = motion(n, seed=9, bandwidth=5.0)
+    y = outputs(alpha, ad, add)
+    msgs = list(frames(alpha, y, noise=2e-3, seed=4))
+    ident, models = run(CFG, msgs)
+    assert calls and ident.realisation_sd is not None and np.all(ident.realisation_sd > 0)
+    iv = models[-1]["intervals"]["quasi_steady"]["lift"]
+    half = (iv[1] - iv[0]) / 2
+    assert half >= 1.959 * ident.realisation_sd[0, 0]
+
+    self_, est, rank, W, seed = calls[-1]
+
+    def scaled(k):
+        post = [(U, s2 * k) for U, s2 in est.posterior]
+        return orig(self_, dc.replace(est, posterior=post), rank, W, seed)
+
+    small, double = scaled(1e-4), scaled(4e-4)
+    np.testing.assert_allclose(double / small, 2.0, rtol=0.15)
+    assert np.all(scaled(0.0) <= 1e-9 * np.abs(ident.rls.theta[:3]) + 1e-15)
+
+    monkeypatch.setattr(OnlineIdentifier, "_realisation_spread", orig)
+    ident0, models0 = run(with_identify(realisation_draws=0), msgs)
+    assert ident0.realisation_sd is None
+    iv0 = models0[-1]["intervals"]["quasi_steady"]["lift"]
+    assert (iv0[1] - iv0[0]) / 2 < half

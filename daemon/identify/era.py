@@ -36,6 +36,7 @@ __all__ = [
     "era",
     "HankelFactors",
     "hankel_factors",
+    "hankel_factors_near",
     "markov_of",
     "choose_rank",
     "unexplained_fraction",
@@ -204,6 +205,43 @@ def hankel_factors(markov, rows: int | None = None, cols: int | None = None) -> 
     h0 = block_hankel(mk, rows, cols, shift=0)  # H(0), Juang & Pappa eq. 8
     h1 = block_hankel(mk, rows, cols, shift=1)  # H(1)
     U, s, Vt = np.linalg.svd(h0, full_matrices=False)  # H(0) = U S V^T, eq. 9
+    for a in (h1, U, s, Vt):
+        a.flags.writeable = False
+    return HankelFactors(rows=rows, cols=cols, h1=h1, U=U, s=s, Vt=Vt)
+
+
+def hankel_factors_near(markov, rank: int, near: HankelFactors, iterations: int = 2
+                        ) -> HankelFactors:
+    """The leading ``rank`` singular triplets of ``H(0)`` of ``markov``, found by subspace
+    iteration from those of a nearby Hankel matrix ``near`` (same block shape).
+
+    For Markov parameters that differ little from the ones ``near`` was computed on (draws from
+    their posterior, :func:`wingwatch.daemon.identify.transient.markov_draws`), ``iterations``
+    steps of orthogonal (subspace) iteration on ``H^T H`` started from ``near``'s right singular
+    vectors, then the exact SVD of the small projected matrix (Rayleigh-Ritz), give the leading
+    subspace far more cheaply than a full SVD (G. H. Golub and C. F. Van Loan, "Matrix
+    Computations", 4th ed., 2013, sec. 8.2.4 and 10.4; N. Halko, P. G. Martinsson and J. A.
+    Tropp, SIAM Review 53(2), 2011, algorithm 4.4). Only the first ``rank`` factors are
+    returned, enough for :func:`era` at that rank; ``s`` then holds ``rank`` values.
+    """
+    mk = _as_markov(markov)
+    rows, cols = near.rows, near.cols
+    n_out = mk.shape[1]
+    # H(0) and H(1) from one gather: H(1) is H(0) of one more block row, less the first
+    both = block_hankel(mk, rows + 1, cols, shift=0) if rows + cols + 1 <= mk.shape[0] - 1 else None
+    if both is None:
+        h0 = block_hankel(mk, rows, cols, shift=0)
+        h1 = block_hankel(mk, rows, cols, shift=1)
+    else:
+        h0, h1 = both[:rows * n_out], both[n_out:]
+    k = min(rank + 2, len(near.s))  # two guard vectors speed up convergence of the last one
+    Q = near.Vt[:k].T
+    for _ in range(max(iterations, 1)):
+        Q, _r = np.linalg.qr(h0.T @ (h0 @ Q))
+    Ub, s, Vt_small = np.linalg.svd(h0 @ Q, full_matrices=False)
+    U = Ub[:, :rank]
+    Vt = (Vt_small @ Q.T)[:rank]
+    s = s[:rank]
     for a in (h1, U, s, Vt):
         a.flags.writeable = False
     return HankelFactors(rows=rows, cols=cols, h1=h1, U=U, s=s, Vt=Vt)

@@ -47,7 +47,8 @@ def _state_matrices(A, B) -> tuple[np.ndarray, np.ndarray]:
     return A, B
 
 
-def simulate_states(A, B, u, x0=None, chunk: int = 64) -> tuple[np.ndarray, np.ndarray]:
+def simulate_states(A, B, u, x0=None, chunk: int = 64, *, cache: bool = True
+                    ) -> tuple[np.ndarray, np.ndarray]:
     """States of ``x(k+1) = A x(k) + B u(k)`` over one frame, with explicit state in and out.
 
     Parameters
@@ -62,6 +63,10 @@ def simulate_states(A, B, u, x0=None, chunk: int = 64) -> tuple[np.ndarray, np.n
         State at the first sample (zeros by default).
     chunk : int
         Samples per vectorised step (memory ``chunk^2 r``).
+    cache : bool
+        Keep the lifted maps of ``(A, B)`` for the next call (the default: the pipeline runs the
+        same few models block after block). False for a one-off model, so that it does not
+        push the pipeline's models out of the bounded cache.
 
     Returns
     -------
@@ -84,7 +89,7 @@ def simulate_states(A, B, u, x0=None, chunk: int = 64) -> tuple[np.ndarray, np.n
     if n == 0 or r == 0:
         return np.zeros((n, r)), x
     L = int(min(max(chunk, 1), n))
-    powers, H, T = _lifted(A, B, L)
+    powers, H, T = _lifted(A, B, L, cache=cache)
     nb = -(-n // L)
     U = np.zeros(nb * L)
     U[:n] = u
@@ -139,13 +144,14 @@ def block_end_state(A, B, U, x0) -> np.ndarray:
 _LIFT_CACHE: dict[tuple, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
 
 
-def _lifted(A: np.ndarray, B: np.ndarray, L: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _lifted(A: np.ndarray, B: np.ndarray, L: int, *, cache: bool = True
+            ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """``powers[k] = A^k`` (k = 0..L), ``H[:, j] = A^(L-1-j) B`` and the block Toeplitz map
     ``T`` ((L r) x L: row ``k r + i`` gives state i at sample k from the block's inputs), cached
     by the bytes of (A, B) and L: the identifier and the watcher run the same few models on
     blocks of one length, so the matrices are built once per model, not once per block."""
     key = (A.tobytes(), B.tobytes(), A.shape[0], L)
-    hit = _LIFT_CACHE.get(key)
+    hit = _LIFT_CACHE.get(key) if cache else None
     if hit is not None:
         return hit
     r = A.shape[0]
@@ -160,25 +166,12 @@ def _lifted(A: np.ndarray, B: np.ndarray, L: int) -> tuple[np.ndarray, np.ndarra
     H = h[::-1].T.copy()  # (r, L)
     for arr in (powers, H, T):
         arr.flags.writeable = False
+    if not cache:
+        return powers, H, T
     if len(_LIFT_CACHE) >= 24:  # bounded (an entry is up to about 1 MB): drop the oldest
         _LIFT_CACHE.pop(next(iter(_LIFT_CACHE)))
     _LIFT_CACHE[key] = (powers, H, T)
     return powers, H, T
-    L = int(min(max(chunk, 1), n))
-    powers = np.empty((L + 1, r, r))
-    powers[0] = np.eye(r)
-    for k in range(1, L + 1):
-        powers[k] = A @ powers[k - 1]  # A^k
-    h = powers[:L] @ B  # h[k] = A^k B, shape (L, r)
-    lag = np.arange(L)[:, None] - np.arange(L)[None, :] - 1  # k - 1 - j
-    toeplitz = np.where((lag >= 0)[:, :, None], h[np.clip(lag, 0, None)], 0.0)  # (L, L, r)
-    for start in range(0, n, L):
-        m = min(L, n - start)
-        uc = u[start : start + m]
-        # x(k) = A^k x0 + sum_{j<k} A^(k-1-j) B u(j)
-        X[start : start + m] = powers[:m] @ x + np.einsum("kjr,j->kr", toeplitz[:m, :m], uc)
-        x = powers[m] @ x + h[:m][::-1].T @ uc  # x(m) = A^m x0 + sum_j A^(m-1-j) B u(j)
-    return X, x
 
 
 def regressor(alpha, alpha_dot, alpha_ddot, states) -> np.ndarray:

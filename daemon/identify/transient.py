@@ -30,6 +30,7 @@ True
 from __future__ import annotations
 
 import functools
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -47,6 +48,7 @@ __all__ = [
     "JointEstimate",
     "fir_markov_joint",
     "estimate_markov",
+    "markov_draws",
     "estimate_markov_joint",
     "realise",
     "realise_transient",
@@ -195,6 +197,7 @@ def fir_markov(
     *,
     hyper: list | None = None,
     chosen: list | None = None,
+    posterior: list | None = None,
 ) -> np.ndarray:
     """Markov parameters ``h_0 .. h_L`` of ``r(k) = sum_j h_j u(k-j)``, kernel-regularised.
 
@@ -223,6 +226,9 @@ def fir_markov(
     ``hyper`` (one ``(decay index, scale index)`` pair per output, from an earlier call) makes
     the search local: only the grid neighbours of the previous choice are tried (a warm start
     for the online slow layer). The pairs chosen are appended to ``chosen`` when it is given.
+    When ``posterior`` is given, ``(U, s2)`` is appended per output at the chosen point: the
+    upper Cholesky factor of ``K`` and the noise variance, so that the posterior covariance of
+    that output's ``h`` is ``s2 K^-1 = s2 (U^T U)^-1`` (:func:`markov_draws`).
 
     Returns an array of shape ``(L + 1, n_out, 1)`` (``markov[0]`` is the direct term).
     """
@@ -283,13 +289,36 @@ def fir_markov(
                           + 2.0 * np.sum(np.log(np.diag(cf[0]))))
                 nll = 0.5 * (quad + logdet)  # -log p(r | lam, c), up to a constant
                 if nll < best[0]:
-                    best = (nll, h, (di, si))
+                    best = (nll, h, (di, si), cf[0] if posterior is not None else None)
         if best[1] is None:  # pragma: no cover - the grid always holds a well-posed point
             raise IdentificationError("no kernel hyperparameter gave a well-posed Markov estimate")
         out[:, j] = best[1]
         if chosen is not None:
             chosen.append(best[2])
+        if posterior is not None:
+            posterior.append((np.triu(best[3]), float(s2[j])))
     return out[:, :, None]
+
+
+def markov_draws(est: "MarkovEstimate", n: int, rng: np.random.Generator) -> np.ndarray:
+    """``n`` draws of the Markov parameters from their posterior under the TC prior.
+
+    Given the kernel hyperparameters, ``h`` of each output is Gaussian with mean
+    ``est.markov`` and covariance ``s2 K^-1`` (:func:`fir_markov`; the posterior of Bayesian
+    linear regression with a Gaussian prior, C. E. Rasmussen and C. K. I. Williams, "Gaussian
+    Processes for Machine Learning", MIT Press 2006, eq. 2.8); a draw is
+    ``h + sqrt(s2) U^-1 z`` with ``z`` standard normal, since ``cov(U^-1 z) = (U^T U)^-1``.
+    The outputs are independent (separate fits). Returns shape ``(n, L + 1, n_out, 1)``.
+    """
+    if est.posterior is None:
+        raise ValueError("this Markov estimate carries no posterior (fit it with estimate_markov)")
+    mk = est.markov
+    out = np.repeat(mk[None], n, axis=0)
+    for j, (U, s2) in enumerate(est.posterior):
+        z = rng.standard_normal((U.shape[0], n))
+        e = scipy.linalg.solve_triangular(U, z, lower=False, check_finite=False)
+        out[:, :, j, 0] += math.sqrt(s2) * e.T
+    return out
 
 
 #: grid of kernel-to-noise variance ratios for :func:`fir_markov_joint`, in units of
@@ -412,6 +441,7 @@ class MarkovEstimate:
     hankel_sv: np.ndarray
     hyper: list | None = None  # kernel hyperparameters chosen, for a warm start next time
     factors: HankelFactors | None = None  # SVD of the Hankel matrix, shared by every realise()
+    posterior: list | None = None  # per output (U, s2): h ~ N(markov, s2 (U^T U)^-1)
 
     @property
     def dt_decimated(self) -> float:
@@ -445,12 +475,13 @@ def estimate_markov(u: np.ndarray, r: np.ndarray, rate_hz: float, *, decimate: i
     dt = 1.0 / rate_hz
     n_lags = max(int(round(markov_s / (dt * decimate))), min_lags)
     chosen: list = []
+    post: list = []
     mk = fir_markov(decimate_mean(u, decimate), decimate_mean(r, decimate), n_lags, hyper=hyper,
-                    chosen=chosen)
+                    chosen=chosen, posterior=post)
     rows, cols = n_lags // 2, n_lags - n_lags // 2
     fac = hankel_factors(mk, rows, cols)
     return MarkovEstimate(markov=mk, dt=dt, decimate=decimate, hankel_sv=fac.s, factors=fac,
-                          hyper=[list(c) for c in chosen])
+                          hyper=[list(c) for c in chosen], posterior=post)
 
 
 def estimate_markov_joint(u: np.ndarray, F: np.ndarray, y: np.ndarray, rate_hz: float, *,
