@@ -277,3 +277,42 @@ def test_markov_draws_have_the_textbook_posterior_mean_and_covariance():
     with pytest.raises(ValueError, match="posterior"):
         markov_draws(MarkovEstimate(markov=mk, dt=1.0, decimate=1, hankel_sv=np.zeros(0)), 2,
                      np.random.Generator(np.random.PCG64(1)))
+
+
+def test_fir_markov_warm_start_ends_at_a_local_optimum_of_the_marginal_likelihood():
+    """The warm start's compass search (Kolda, Lewis and Torczon, SIAM Review 2003) against the
+    textbook N-dimensional log-likelihood of every grid point (scipy.stats.multivariate_normal,
+    as above): from any start it ends at a point no axis neighbour beats, from the global
+    optimum it stays there, and its estimate is that point's posterior mean."""
+    import scipy.stats
+
+    from wingwatch.daemon.identify.transient import DECAYS, SCALES, _tc_kernel
+
+    rng = np.random.default_rng(7)
+    n, lags = 160, 12
+    u = rng.standard_normal(n)
+    h_true = 0.8 ** np.arange(lags + 1) * np.sin(0.7 * np.arange(lags + 1))
+    r = np.convolve(u, h_true)[:n] + 0.3 * rng.standard_normal(n)
+    p = lags + 1
+    V = np.lib.stride_tricks.sliding_window_view(u, p)[:, ::-1]
+    R = r[lags:]
+    h_ls, *_ = np.linalg.lstsq(V, R, rcond=None)
+    s2 = np.sum((R - V @ h_ls) ** 2) / (R.size - p)
+    base = np.trace(V.T @ V) / p
+    ll = np.empty((len(DECAYS), len(SCALES)))
+    for di, lam in enumerate(DECAYS):
+        P = _tc_kernel(p, lam)
+        for si, sc in enumerate(SCALES):
+            S = sc * np.var(R) / base * V @ P @ V.T + s2 * np.eye(R.size)
+            ll[di, si] = scipy.stats.multivariate_normal(np.zeros(R.size), S,
+                                                         allow_singular=True).logpdf(R)
+    best = np.unravel_index(np.argmax(ll), ll.shape)
+    for start in [(0, 0), (5, 10), (2, 3), best]:
+        chosen: list = []
+        fir_markov(u, r, lags, hyper=[list(start)], chosen=chosen)
+        d, s = chosen[0]
+        for dd, ds in ((-1, 0), (1, 0), (0, -1), (0, 1)):
+            if 0 <= d + dd < len(DECAYS) and 0 <= s + ds < len(SCALES):
+                assert ll[d, s] >= ll[d + dd, s + ds] - 1e-9
+        if start == best:
+            assert (d, s) == tuple(best)

@@ -224,8 +224,8 @@ def fir_markov(
       (rows x n_out)          (rows x (L+1))               ((L+1) x n_out)
 
     ``hyper`` (one ``(decay index, scale index)`` pair per output, from an earlier call) makes
-    the search local: only the grid neighbours of the previous choice are tried (a warm start
-    for the online slow layer). The pairs chosen are appended to ``chosen`` when it is given.
+    the search local: a compass search on the grid from the previous choice, which stops where
+    no axis neighbour is better (a warm start for the online slow layer). The pairs chosen are appended to ``chosen`` when it is given.
     When ``posterior`` is given, ``(U, s2)`` is appended per output at the chosen point: the
     upper Cholesky factor of ``K`` and the noise variance, so that the posterior covariance of
     that output's ``h`` is ``s2 K^-1 = s2 (U^T U)^-1`` (:func:`markov_draws`).
@@ -260,36 +260,60 @@ def fir_markov(
         var_r = float(np.var(R[:, j])) or 1.0
         rr = float(R[:, j] @ R[:, j])
         b = VtR[:, j]
-        best = (np.inf, None, None)
-        if hyper is not None and j < len(hyper):
-            di, si = hyper[j]
-            d_range = range(max(di - 1, 0), min(di + 2, len(DECAYS)))
-            s_range = range(max(si - 1, 0), min(si + 2, len(SCALES)))
-        else:
-            d_range, s_range = range(len(DECAYS)), range(len(SCALES))
-        for di in d_range:
+        tried: dict[tuple[int, int], tuple | None] = {}
+
+        def evaluate(di: int, si: int) -> tuple | None:
+            """-log marginal likelihood at grid point (di, si), the posterior mean, the factor."""
+            if (di, si) in tried:
+                return tried[di, si]
             q_diag, q_off, logdet_p = _tc_precision(p, DECAYS[di])
-            for si in s_range:
-                c = SCALES[si] * var_r / max(base, 1e-300)
-                # Posterior precision in the p-dimensional form (Woodbury; matrix determinant
-                # lemma): K = V^T V + (s2 / c) P^-1, P^-1 tridiagonal, so no kernel products.
-                g = s2[j] / c
-                np.copyto(K, G)
-                K.flat[::p + 1] += g * q_diag
-                K.flat[1::p + 1] += g * q_off
-                K.flat[p::p + 1] += g * q_off
-                try:
-                    cf = scipy.linalg.cho_factor(K, check_finite=False)
-                except np.linalg.LinAlgError:
-                    continue
-                h = scipy.linalg.cho_solve(cf, b, check_finite=False)
-                quad = (rr - b @ h) / s2[j]  # r^T (s2 I + c V P V^T)^-1 r
-                # log det(s2 I + c V P V^T) = rows log s2 + log det P + p log(c / s2) + log det K
-                logdet = (rows * np.log(s2[j]) + logdet_p - p * np.log(g)
-                          + 2.0 * np.sum(np.log(np.diag(cf[0]))))
-                nll = 0.5 * (quad + logdet)  # -log p(r | lam, c), up to a constant
-                if nll < best[0]:
-                    best = (nll, h, (di, si), cf[0] if posterior is not None else None)
+            c = SCALES[si] * var_r / max(base, 1e-300)
+            # Posterior precision in the p-dimensional form (Woodbury; matrix determinant
+            # lemma): K = V^T V + (s2 / c) P^-1, P^-1 tridiagonal, so no kernel products.
+            g = s2[j] / c
+            np.copyto(K, G)
+            K.flat[::p + 1] += g * q_diag
+            K.flat[1::p + 1] += g * q_off
+            K.flat[p::p + 1] += g * q_off
+            try:
+                cf = scipy.linalg.cho_factor(K, check_finite=False)
+            except np.linalg.LinAlgError:
+                tried[di, si] = None
+                return None
+            h = scipy.linalg.cho_solve(cf, b, check_finite=False)
+            quad = (rr - b @ h) / s2[j]  # r^T (s2 I + c V P V^T)^-1 r
+            # log det(s2 I + c V P V^T) = rows log s2 + log det P + p log(c / s2) + log det K
+            logdet = (rows * np.log(s2[j]) + logdet_p - p * np.log(g)
+                      + 2.0 * np.sum(np.log(np.diag(cf[0]))))
+            nll = 0.5 * (quad + logdet)  # -log p(r | lam, c), up to a constant
+            tried[di, si] = (nll, h, (di, si), cf[0] if posterior is not None else None)
+            return tried[di, si]
+
+        best = (np.inf, None, None, None)
+        start = tuple(hyper[j]) if hyper is not None and j < len(hyper) else None
+        if start is not None and evaluate(*start) is not None:
+            # Warm start: compass search on the grid from the previous choice (move to the
+            # best of the four axis neighbours while it improves; Kolda, Lewis and Torczon,
+            # SIAM Review 45(3), 2003): 5 factorisations when the choice stands.
+            best = evaluate(*start)
+            while True:
+                d0, s0 = best[2]
+                moved = best
+                for dd, ds in ((-1, 0), (1, 0), (0, -1), (0, 1)):
+                    di, si = d0 + dd, s0 + ds
+                    if 0 <= di < len(DECAYS) and 0 <= si < len(SCALES):
+                        res = evaluate(di, si)
+                        if res is not None and res[0] < moved[0]:
+                            moved = res
+                if moved is best:
+                    break
+                best = moved
+        else:
+            for di in range(len(DECAYS)):
+                for si in range(len(SCALES)):
+                    res = evaluate(di, si)
+                    if res is not None and res[0] < best[0]:
+                        best = res
         if best[1] is None:  # pragma: no cover - the grid always holds a well-posed point
             raise IdentificationError("no kernel hyperparameter gave a well-posed Markov estimate")
         out[:, j] = best[1]
