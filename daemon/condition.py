@@ -96,9 +96,9 @@ class ChannelMap:
         si = frame.samples * self._gain + self._offset  # value = gain * raw + offset
         q = si[:, self._i_q]
         flow_on = q >= self._q_min
-        with np.errstate(divide="ignore", invalid="ignore"):
-            lift = np.where(flow_on, si[:, self._i_force] / (q * self._area), np.nan)  # C_L = L/(qS)
-        self.flow_off_samples += int(np.count_nonzero(~flow_on))
+        lift = np.full(q.shape[0], np.nan)  # C_L = L / (q S), only where the flow is on
+        np.divide(si[:, self._i_force], q * self._area, out=lift, where=flow_on)
+        self.flow_off_samples += q.shape[0] - int(np.count_nonzero(flow_on))
         self.blocks += 1
         kappa = self._two_over_t * si[:, self._i_strain]  # kappa = 2 eps / t (beam theory)
         return ConditionedBlock(
