@@ -677,7 +677,7 @@ class OnlineIdentifier:
     def _realisation_spread(self, est, rank: int, W: np.ndarray, seed: int) -> np.ndarray | None:
         """How much the interpretable columns depend on which transient the window's data
         realise: their standard deviation over draws of the Markov parameters from the TC
-        posterior (:func:`markov_draws`), each realised by ERA at the candidate's rank, carried
+        posterior (:func:`markov_draws`, widened for serially correlated residuals), each realised by ERA at the candidate's rank, carried
         to the sample rate, and the columns refitted under it by least squares on the window
         (the fast layer's regression, without forgetting). Shape ``(3, 2)``: quasi-steady,
         rate, added mass by output.

@@ -315,7 +315,7 @@ def test_realisation_spread_follows_the_markov_posterior_and_widens_the_interval
     self_, est, rank, W, seed = calls[-1]
 
     def scaled(k):
-        post = [(U, s2 * k) for U, s2 in est.posterior]
+        post = [(U, s2 * k, f) for U, s2, f in est.posterior]
         return orig(self_, dc.replace(est, posterior=post), rank, W, seed)
 
     small, double = scaled(1e-4), scaled(4e-4)

@@ -49,6 +49,7 @@ __all__ = [
     "fir_markov_joint",
     "estimate_markov",
     "markov_draws",
+    "serial_inflation",
     "estimate_markov_joint",
     "realise",
     "realise_transient",
@@ -226,9 +227,11 @@ def fir_markov(
     ``hyper`` (one ``(decay index, scale index)`` pair per output, from an earlier call) makes
     the search local: a compass search on the grid from the previous choice, which stops where
     no axis neighbour is better (a warm start for the online slow layer). The pairs chosen are appended to ``chosen`` when it is given.
-    When ``posterior`` is given, ``(U, s2)`` is appended per output at the chosen point: the
-    upper Cholesky factor of ``K`` and the noise variance, so that the posterior covariance of
-    that output's ``h`` is ``s2 K^-1 = s2 (U^T U)^-1`` (:func:`markov_draws`).
+    When ``posterior`` is given, ``(U, s2, f)`` is appended per output at the chosen point: the
+    upper Cholesky factor of ``K``, the noise variance and the serial-correlation inflation of
+    the residual (:func:`serial_inflation`), so that the posterior covariance of that output's
+    ``h`` is ``s2 K^-1 = s2 (U^T U)^-1`` with white noise and ``f`` times it with correlated
+    noise (:func:`markov_draws`).
 
     Returns an array of shape ``(L + 1, n_out, 1)`` (``markov[0]`` is the direct term).
     """
@@ -320,11 +323,33 @@ def fir_markov(
         if chosen is not None:
             chosen.append(best[2])
         if posterior is not None:
-            posterior.append((np.triu(best[3]), float(s2[j])))
+            e = R[:, j] - V @ best[1]  # residual of the posterior mean
+            rho = float(e[1:] @ e[:-1] / max(float(e @ e), 1e-300))
+            posterior.append((np.triu(best[3]), float(s2[j]), serial_inflation(rho)))
     return out[:, :, None]
 
 
-def markov_draws(est: "MarkovEstimate", n: int, rng: np.random.Generator) -> np.ndarray:
+def serial_inflation(rho: float) -> float:
+    """Variance inflation ``(1 + rho) / (1 - rho)`` for residuals with lag-one autocorrelation
+    ``rho``, at least 1 and at most 20.
+
+    The white-noise posterior treats every decimated sample as independent; with AR(1) noise the
+    variance of a regression coefficient is larger by ``(1 + rho phi) / (1 - rho phi)`` for a
+    regressor with lag-one autocorrelation ``phi`` (the long-run variance of an AR(1) process;
+    G. E. P. Box, G. M. Jenkins and G. C. Reinsel, "Time Series Analysis", sec. 3.2, from
+    memory). Taking ``phi = 1`` (slowly varying regressors, as the lagged pitch rate is at the
+    decimated rate) gives this factor, the conservative end.
+
+    >>> serial_inflation(0.0), serial_inflation(0.6), serial_inflation(-0.5)
+    (1.0, 4.0, 1.0)
+    """
+    if not np.isfinite(rho) or rho >= 1.0:
+        return 20.0
+    return float(min(max((1.0 + rho) / (1.0 - rho), 1.0), 20.0))
+
+
+def markov_draws(est: "MarkovEstimate", n: int, rng: np.random.Generator, *,
+                 serial: bool = True) -> np.ndarray:
     """``n`` draws of the Markov parameters from their posterior under the TC prior.
 
     Given the kernel hyperparameters, ``h`` of each output is Gaussian with mean
@@ -332,16 +357,18 @@ def markov_draws(est: "MarkovEstimate", n: int, rng: np.random.Generator) -> np.
     linear regression with a Gaussian prior, C. E. Rasmussen and C. K. I. Williams, "Gaussian
     Processes for Machine Learning", MIT Press 2006, eq. 2.8); a draw is
     ``h + sqrt(s2) U^-1 z`` with ``z`` standard normal, since ``cov(U^-1 z) = (U^T U)^-1``.
-    The outputs are independent (separate fits). Returns shape ``(n, L + 1, n_out, 1)``.
+    With ``serial`` (the default) the covariance is widened by the residual's
+    :func:`serial_inflation`, since the residuals of a decimated record are rarely white. The
+    outputs are independent (separate fits). Returns shape ``(n, L + 1, n_out, 1)``.
     """
     if est.posterior is None:
         raise ValueError("this Markov estimate carries no posterior (fit it with estimate_markov)")
     mk = est.markov
     out = np.repeat(mk[None], n, axis=0)
-    for j, (U, s2) in enumerate(est.posterior):
+    for j, (U, s2, inflation) in enumerate(est.posterior):
         z = rng.standard_normal((U.shape[0], n))
         e = scipy.linalg.solve_triangular(U, z, lower=False, check_finite=False)
-        out[:, :, j, 0] += math.sqrt(s2) * e.T
+        out[:, :, j, 0] += math.sqrt(s2 * (inflation if serial else 1.0)) * e.T
     return out
 
 
@@ -465,7 +492,7 @@ class MarkovEstimate:
     hankel_sv: np.ndarray
     hyper: list | None = None  # kernel hyperparameters chosen, for a warm start next time
     factors: HankelFactors | None = None  # SVD of the Hankel matrix, shared by every realise()
-    posterior: list | None = None  # per output (U, s2): h ~ N(markov, s2 (U^T U)^-1)
+    posterior: list | None = None  # per output (U, s2, f): h ~ N(markov, f s2 (U^T U)^-1)
 
     @property
     def dt_decimated(self) -> float:
