@@ -49,10 +49,10 @@ from wingwatch.daemon.condition import ConditionedBlock
 from wingwatch.daemon.config import Config
 from wingwatch.daemon.errors import ConfigError, IdentificationError
 from wingwatch.daemon.identify.differentiate import DelayLine, SavgolDifferentiator
+from wingwatch.daemon.identify.era import era, hankel_factors_near
 from wingwatch.daemon.identify.interpretable import simulate_states
 from wingwatch.daemon.identify.modes import ModeTracker, modal_parameters
 from wingwatch.daemon.identify.rls import RecursiveLeastSquares
-from wingwatch.daemon.identify.era import era, hankel_factors_near
 from wingwatch.daemon.identify.transient import (estimate_markov, markov_draws, realise,
                                                  resample_realisation)
 from wingwatch.daemon.modelfile import COEFFICIENT_KEYS, OUTPUT_KEYS, ReferenceModel, load_model
@@ -677,9 +677,10 @@ class OnlineIdentifier:
     def _realisation_spread(self, est, rank: int, W: np.ndarray, seed: int) -> np.ndarray | None:
         """How much the interpretable columns depend on which transient the window's data
         realise: their standard deviation over draws of the Markov parameters from the TC
-        posterior (:func:`markov_draws`, widened for serially correlated residuals), each realised by ERA at the candidate's rank, carried
-        to the sample rate, and the columns refitted under it by least squares on the window
-        (the fast layer's regression, without forgetting). Shape ``(3, 2)``: quasi-steady,
+        posterior (:func:`markov_draws`, widened for serially correlated residuals), each
+        realised by ERA at the candidate's rank, carried to the sample rate, and the columns
+        refitted under it by least squares on the window (the fast layer's regression, without
+        forgetting). Shape ``(3, 2)``: quasi-steady,
         rate, added mass by output.
 
         The fast layer's intervals are conditional on one realisation; the spread of the columns
@@ -702,7 +703,8 @@ class OnlineIdentifier:
             try:
                 fac = hankel_factors_near(mk, rank, est.factors)
                 real = era(mk, rank, rows, cols, factors=fac)
-                if not np.all(np.isfinite(real.A)) or np.max(np.abs(np.linalg.eigvals(real.A))) >= 1.0:
+                if (not np.all(np.isfinite(real.A))
+                        or np.max(np.abs(np.linalg.eigvals(real.A))) >= 1.0):
                     continue
                 A, B = resample_realisation(real.A, real.B, est.dt_decimated, est.dt)
             except (IdentificationError, np.linalg.LinAlgError):

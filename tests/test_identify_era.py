@@ -168,7 +168,8 @@ def test_hankel_factors_near_gives_the_leading_svd_of_a_nearby_hankel_matrix():
 
     rng = np.random.default_rng(8)
     A = np.diag([0.92, 0.6, -0.2, 0.75]) + 0.04 * rng.standard_normal((4, 4))
-    mk = markov_of(A, rng.standard_normal((4, 1)), rng.standard_normal((2, 4)), np.zeros((2, 1)), 41)
+    mk = markov_of(A, rng.standard_normal((4, 1)), rng.standard_normal((2, 4)), np.zeros((2, 1)),
+                   41)
     near = hankel_factors(mk, 20, 20)
     draw = mk + 1e-4 * np.abs(mk).max() * rng.standard_normal(mk.shape)
     full = np.linalg.svd(block_hankel(draw, 20, 20), compute_uv=False)

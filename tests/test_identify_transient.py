@@ -340,7 +340,8 @@ def test_posterior_widening_for_serially_correlated_residuals():
         est = MarkovEstimate(markov=mk, dt=1.0, decimate=1, hankel_sv=np.zeros(0), posterior=post)
         gen = np.random.Generator(np.random.PCG64(3))
         wide = markov_draws(est, 4000, gen).std(axis=0)
-        narrow = markov_draws(est, 4000, np.random.Generator(np.random.PCG64(3)), serial=False).std(axis=0)
+        narrow = markov_draws(est, 4000, np.random.Generator(np.random.PCG64(3)),
+                              serial=False).std(axis=0)
         np.testing.assert_allclose(wide / narrow, np.sqrt(post[0][2]), rtol=1e-9)
     assert 1.0 <= infl[0] < 1.15
     assert infl[1] == pytest.approx(4.0, rel=0.2)

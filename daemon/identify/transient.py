@@ -226,7 +226,8 @@ def fir_markov(
 
     ``hyper`` (one ``(decay index, scale index)`` pair per output, from an earlier call) makes
     the search local: a compass search on the grid from the previous choice, which stops where
-    no axis neighbour is better (a warm start for the online slow layer). The pairs chosen are appended to ``chosen`` when it is given.
+    no axis neighbour is better (a warm start for the online slow layer). The pairs chosen are
+    appended to ``chosen`` when it is given.
     When ``posterior`` is given, ``(U, s2, f)`` is appended per output at the chosen point: the
     upper Cholesky factor of ``K``, the noise variance and the serial-correlation inflation of
     the residual (:func:`serial_inflation`), so that the posterior covariance of that output's
