@@ -169,39 +169,47 @@ def test_tc_kernel_inverse_and_log_determinant_in_closed_form():
         assert _tc_precision(n, lam)[2] == pytest.approx(np.linalg.slogdet(P)[1], rel=1e-10)
 
 
-def test_fir_markov_is_the_marginal_likelihood_choice_and_posterior_mean():
-    """The (L+1)-dimensional form against the textbook N-dimensional one: r ~ N(0, c V P V^T +
-    s2 I) maximised over the same grid (scipy.stats.multivariate_normal), then the posterior mean
-    c P V^T (c V P V^T + s2 I)^-1 r (Chen, Ohlsson and Ljung, Automatica 2012, eqs. 10-12, from
-    memory)."""
+def _textbook_kernel_grid(seed=7, n=160, lags=12):
+    """A short noisy FIR record and, at every (decay, scale) grid point of fir_markov, the
+    textbook N-dimensional log marginal likelihood r ~ N(0, c V P V^T + s2 I)
+    (scipy.stats.multivariate_normal) and posterior mean c P V^T (c V P V^T + s2 I)^-1 r
+    (Chen, Ohlsson and Ljung, Automatica 2012, eqs. 10-12, from memory)."""
     import scipy.stats
 
     from wingwatch.daemon.identify.transient import DECAYS, SCALES, _tc_kernel
 
-    rng = np.random.default_rng(7)
-    n, lags = 160, 12
+    rng = np.random.default_rng(seed)
     u = rng.standard_normal(n)
     h_true = 0.8 ** np.arange(lags + 1) * np.sin(0.7 * np.arange(lags + 1))
     r = np.convolve(u, h_true)[:n] + 0.3 * rng.standard_normal(n)
-    chosen: list = []
-    mk = fir_markov(u, r, lags, chosen=chosen)
     p = lags + 1
     V = np.lib.stride_tricks.sliding_window_view(u, p)[:, ::-1]
     R = r[lags:]
     h_ls, *_ = np.linalg.lstsq(V, R, rcond=None)
     s2 = np.sum((R - V @ h_ls) ** 2) / (R.size - p)
     base = np.trace(V.T @ V) / p
-    best = None
+    ll = np.empty((len(DECAYS), len(SCALES)))
+    mean = np.empty((len(DECAYS), len(SCALES), p))
     for di, lam in enumerate(DECAYS):
         P = _tc_kernel(p, lam)
         for si, sc in enumerate(SCALES):
             c = sc * np.var(R) / base
             S = c * V @ P @ V.T + s2 * np.eye(R.size)
-            ll = scipy.stats.multivariate_normal(np.zeros(R.size), S, allow_singular=True).logpdf(R)
-            if best is None or ll > best[0]:
-                best = (ll, (di, si), c * P @ V.T @ np.linalg.solve(S, R))
-    assert tuple(chosen[0]) == best[1]
-    np.testing.assert_allclose(mk[:, 0, 0], best[2], rtol=1e-6, atol=1e-9)
+            ll[di, si] = scipy.stats.multivariate_normal(np.zeros(R.size), S,
+                                                         allow_singular=True).logpdf(R)
+            mean[di, si] = c * P @ V.T @ np.linalg.solve(S, R)
+    return u, r, lags, ll, mean
+
+
+def test_fir_markov_is_the_marginal_likelihood_choice_and_posterior_mean():
+    """The (L+1)-dimensional form against the textbook N-dimensional one over the same grid
+    (_textbook_kernel_grid): the maximum-likelihood point and its posterior mean."""
+    u, r, lags, ll, mean = _textbook_kernel_grid()
+    chosen: list = []
+    mk = fir_markov(u, r, lags, chosen=chosen)
+    best = np.unravel_index(np.argmax(ll), ll.shape)
+    assert tuple(chosen[0]) == tuple(best)
+    np.testing.assert_allclose(mk[:, 0, 0], mean[best], rtol=1e-6, atol=1e-9)
 
 
 def test_era_on_shared_hankel_factors_is_bit_identical():
@@ -281,39 +289,21 @@ def test_markov_draws_have_the_textbook_posterior_mean_and_covariance():
 
 def test_fir_markov_warm_start_ends_at_a_local_optimum_of_the_marginal_likelihood():
     """The warm start's compass search (Kolda, Lewis and Torczon, SIAM Review 2003) against the
-    textbook N-dimensional log-likelihood of every grid point (scipy.stats.multivariate_normal,
-    as above): from any start it ends at a point no axis neighbour beats, from the global
-    optimum it stays there, and its estimate is that point's posterior mean."""
-    import scipy.stats
+    textbook log-likelihood of every grid point (_textbook_kernel_grid): from any start it ends
+    at a point no axis neighbour beats, from the global optimum it stays there, and its
+    estimate is that point's posterior mean."""
+    from wingwatch.daemon.identify.transient import DECAYS, SCALES
 
-    from wingwatch.daemon.identify.transient import DECAYS, SCALES, _tc_kernel
-
-    rng = np.random.default_rng(7)
-    n, lags = 160, 12
-    u = rng.standard_normal(n)
-    h_true = 0.8 ** np.arange(lags + 1) * np.sin(0.7 * np.arange(lags + 1))
-    r = np.convolve(u, h_true)[:n] + 0.3 * rng.standard_normal(n)
-    p = lags + 1
-    V = np.lib.stride_tricks.sliding_window_view(u, p)[:, ::-1]
-    R = r[lags:]
-    h_ls, *_ = np.linalg.lstsq(V, R, rcond=None)
-    s2 = np.sum((R - V @ h_ls) ** 2) / (R.size - p)
-    base = np.trace(V.T @ V) / p
-    ll = np.empty((len(DECAYS), len(SCALES)))
-    for di, lam in enumerate(DECAYS):
-        P = _tc_kernel(p, lam)
-        for si, sc in enumerate(SCALES):
-            S = sc * np.var(R) / base * V @ P @ V.T + s2 * np.eye(R.size)
-            ll[di, si] = scipy.stats.multivariate_normal(np.zeros(R.size), S,
-                                                         allow_singular=True).logpdf(R)
+    u, r, lags, ll, mean = _textbook_kernel_grid()
     best = np.unravel_index(np.argmax(ll), ll.shape)
     for start in [(0, 0), (5, 10), (2, 3), best]:
         chosen: list = []
-        fir_markov(u, r, lags, hyper=[list(start)], chosen=chosen)
+        mk = fir_markov(u, r, lags, hyper=[list(start)], chosen=chosen)
         d, s = chosen[0]
         for dd, ds in ((-1, 0), (1, 0), (0, -1), (0, 1)):
             if 0 <= d + dd < len(DECAYS) and 0 <= s + ds < len(SCALES):
                 assert ll[d, s] >= ll[d + dd, s + ds] - 1e-9
+        np.testing.assert_allclose(mk[:, 0, 0], mean[d, s], rtol=1e-6, atol=1e-9)
         if start == best:
             assert (d, s) == tuple(best)
 
