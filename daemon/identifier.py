@@ -41,6 +41,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from statistics import NormalDist
 from typing import Any
 
 import numpy as np
@@ -85,8 +86,8 @@ IDENTIFY_DEFAULTS: dict[str, Any] = {
     "realisation_every": 5,
 }
 
-#: Two-sided 95 % normal quantile (statistics.NormalDist().inv_cdf(0.975)).
-_Z975 = 1.9599639845400536
+#: Two-sided 95 % normal quantile.
+_Z975 = NormalDist().inv_cdf(0.975)
 
 #: Whole-number keys for which 0 is allowed (it turns the feature off).
 _ZERO_OK_INTS = ("realisation_draws",)
@@ -628,7 +629,8 @@ class OnlineIdentifier:
         th = rls_old.theta
         resid = dy - np.outer(a, th[0]) - np.outer(ad, th[1]) - np.outer(add, th[2]) - th[-1]
         est = estimate_markov(ad, resid, self.rate, decimate=s.decimate, markov_s=s.markov_s,
-                              min_lags=2 * s.max_rank + 2, hyper=job["hyper"])
+                              min_lags=2 * s.max_rank + 2, hyper=job["hyper"],
+                              posterior=job.get("draw_seed") is not None)
         tf = realise(est, None, max_rank=s.max_rank, energy=s.rank_energy, gap=None,
                      previous_rank=r_old if r_old else None)
         # Debounce: a new rank is taken only when two slow updates in a row ask for it, so a
@@ -692,7 +694,8 @@ class OnlineIdentifier:
         """
         s = self.settings
         rows, cols = est.hankel_shape
-        if est.factors is None or rank < 1 or rank > len(est.factors.s) - 2:
+        if (est.factors is None or est.posterior is None or rank < 1
+                or rank > len(est.factors.s) - 2):
             return None
         F = np.column_stack([W[:, 0], W[:, 1], W[:, 2], np.ones(W.shape[0])])
         dy = W[:, 3:5]
@@ -712,12 +715,7 @@ class OnlineIdentifier:
             X, _ = simulate_states(A, B[:, 0], W[:, 1], chunk=128, cache=False)
             XF = X.T @ F
             G = np.block([[FF, XF.T], [XF, X.T @ X]])
-            rhs = np.vstack([Fy, X.T @ dy])
-            d = np.sqrt(np.maximum(np.diag(G), 1e-300))  # column scaling, as in _state_map
-            try:
-                beta = np.linalg.solve(G / d[:, None] / d[None, :], rhs / d[:, None]) / d[:, None]
-            except np.linalg.LinAlgError:
-                continue
+            beta = _normal_solve(G, np.vstack([Fy, X.T @ dy]))
             if np.all(np.isfinite(beta)):
                 betas.append(beta[:3])
         if len(betas) < max(3, s.realisation_draws // 4):
@@ -943,16 +941,20 @@ class OnlineIdentifier:
                                                     np.asarray(c[4], bool)) for c in jb["catchup"]]}
 
 
-def _state_map(X_old: np.ndarray, X_new: np.ndarray) -> np.ndarray:
-    """Least-squares ``Tt`` of ``X_new ~ X_old Tt`` from the normal equations, columns scaled to
-    unit norm first (a tall, narrow factorisation costs about 20 times more single-threaded for
-    no gain here: the fit is checked to 5 % and a badly conditioned ``T`` is refused anyway).
-    A rank-deficient ``X_old`` still gives a least-squares solution (pseudo-inverse of the
-    scaled normal equations, rcond 1e-12); its ``T`` is then refused by the condition check."""
-    G = X_old.T @ X_old
-    d = np.sqrt(np.diag(G))
+def _normal_solve(G: np.ndarray, rhs: np.ndarray) -> np.ndarray:
+    """Least-squares solution from normal equations ``G z = rhs`` with the columns scaled to
+    unit norm first; a singular ``G`` still gives the minimum-norm solution (pseudo-inverse of
+    the scaled equations, rcond 1e-12)."""
+    d = np.sqrt(np.maximum(np.diag(G), 0.0))
     d[d == 0.0] = 1.0
-    Gs = G / d[:, None] / d[None, :]
-    rhs = (X_old.T @ X_new) / d[:, None]
-    z, *_ = np.linalg.lstsq(Gs, rhs, rcond=1e-12)
+    z, *_ = np.linalg.lstsq(G / d[:, None] / d[None, :], rhs / d[:, None], rcond=1e-12)
     return z / d[:, None]
+
+
+def _state_map(X_old: np.ndarray, X_new: np.ndarray) -> np.ndarray:
+    """Least-squares ``Tt`` of ``X_new ~ X_old Tt`` from the normal equations
+    (:func:`_normal_solve`: a tall, narrow factorisation costs about 20 times more
+    single-threaded for no gain here: the fit is checked to 5 % and a badly conditioned ``T``
+    is refused anyway). A rank-deficient ``X_old`` still gives a least-squares solution; its
+    ``T`` is then refused by the condition check."""
+    return _normal_solve(X_old.T @ X_old, X_old.T @ X_new)

@@ -226,14 +226,8 @@ def hankel_factors_near(markov, rank: int, near: HankelFactors, iterations: int 
     """
     mk = _as_markov(markov)
     rows, cols = near.rows, near.cols
-    n_out = mk.shape[1]
-    # H(0) and H(1) from one gather: H(1) is H(0) of one more block row, less the first
-    both = block_hankel(mk, rows + 1, cols, shift=0) if rows + cols + 1 <= mk.shape[0] - 1 else None
-    if both is None:
-        h0 = block_hankel(mk, rows, cols, shift=0)
-        h1 = block_hankel(mk, rows, cols, shift=1)
-    else:
-        h0, h1 = both[:rows * n_out], both[n_out:]
+    h0 = block_hankel(mk, rows, cols, shift=0)
+    h1 = block_hankel(mk, rows, cols, shift=1)
     k = min(rank + 2, len(near.s))  # two guard vectors speed up convergence of the last one
     Q = near.Vt[:k].T
     for _ in range(max(iterations, 1)):

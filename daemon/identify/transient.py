@@ -511,10 +511,11 @@ class MarkovEstimate:
 
 
 def estimate_markov(u: np.ndarray, r: np.ndarray, rate_hz: float, *, decimate: int = 20,
-                    markov_s: float = 5.0, min_lags: int = 34, hyper: list | None = None
-                    ) -> MarkovEstimate:
+                    markov_s: float = 5.0, min_lags: int = 34, hyper: list | None = None,
+                    posterior: bool = True) -> MarkovEstimate:
     """Decimate ``u`` (pitch rate) and ``r`` (outputs less the interpretable terms) and fit
-    ``markov_s`` seconds of Markov parameters (:func:`fir_markov`)."""
+    ``markov_s`` seconds of Markov parameters (:func:`fir_markov`); with ``posterior`` the
+    estimate carries what :func:`markov_draws` needs."""
     if decimate < 1:
         raise ValueError("decimate must be at least 1")
     u = np.asarray(u, dtype=float).reshape(-1)
@@ -527,7 +528,7 @@ def estimate_markov(u: np.ndarray, r: np.ndarray, rate_hz: float, *, decimate: i
     dt = 1.0 / rate_hz
     n_lags = max(int(round(markov_s / (dt * decimate))), min_lags)
     chosen: list = []
-    post: list = []
+    post: list | None = [] if posterior else None
     mk = fir_markov(decimate_mean(u, decimate), decimate_mean(r, decimate), n_lags, hyper=hyper,
                     chosen=chosen, posterior=post)
     rows, cols = n_lags // 2, n_lags - n_lags // 2
