@@ -57,6 +57,24 @@ class ConditionedBlock:
     def n(self) -> int:
         return int(self.t.shape[0])
 
+    def split(self, k: int) -> tuple["ConditionedBlock", "ConditionedBlock"]:
+        """The first ``k`` samples and the rest (views; the discontinuity stays with the first).
+
+        >>> import numpy as np
+        >>> b = ConditionedBlock(*(np.arange(5.0) for _ in range(5)), np.zeros((5, 2)), 3, True)
+        >>> head, tail = b.split(2)
+        >>> head.t.tolist(), tail.t.tolist(), head.discontinuity, tail.discontinuity
+        ([0.0, 1.0], [2.0, 3.0, 4.0], True, False)
+        """
+        if not 0 < k < self.n:
+            raise ValueError(f"k must be between 1 and {self.n - 1}, got {k}")
+        head = ConditionedBlock(self.t[:k], self.alpha[:k], self.lift[:k], self.curvature[:k],
+                                self.dynamic_pressure[:k], self.si[:k], self.seq,
+                                self.discontinuity)
+        tail = ConditionedBlock(self.t[k:], self.alpha[k:], self.lift[k:], self.curvature[k:],
+                                self.dynamic_pressure[k:], self.si[k:], self.seq, False)
+        return head, tail
+
 
 class ChannelMap:
     """Apply the configured channel map to frames of the conditioning stream."""
@@ -93,22 +111,37 @@ class ChannelMap:
         return frame.stream == self.stream
 
     def apply(self, frame: SensorFrame, discontinuity: bool = False) -> ConditionedBlock:
-        si = frame.samples * self._gain + self._offset  # value = gain * raw + offset
+        return self._condition(frame.samples, frame.times(), frame.seq, discontinuity, 1)
+
+    def apply_many(self, frames: list[SensorFrame], discontinuity: bool = False
+                   ) -> ConditionedBlock:
+        """Consecutive frames of the stream as one block: sample for sample what
+        :meth:`apply` gives for each (the same arithmetic on the same values), with the
+        counters advanced as if they had come one at a time."""
+        if len(frames) == 1:
+            return self.apply(frames[0], discontinuity)
+        samples = np.concatenate([f.samples for f in frames])
+        times = np.concatenate([f.times() for f in frames])
+        return self._condition(samples, times, frames[-1].seq, discontinuity, len(frames))
+
+    def _condition(self, raw: np.ndarray, times: np.ndarray, seq: int, discontinuity: bool,
+                   n_frames: int) -> ConditionedBlock:
+        si = raw * self._gain + self._offset  # value = gain * raw + offset
         q = si[:, self._i_q]
         flow_on = q >= self._q_min
         lift = np.full(q.shape[0], np.nan)  # C_L = L / (q S), only where the flow is on
         np.divide(si[:, self._i_force], q * self._area, out=lift, where=flow_on)
         self.flow_off_samples += q.shape[0] - int(np.count_nonzero(flow_on))
-        self.blocks += 1
+        self.blocks += n_frames
         kappa = self._two_over_t * si[:, self._i_strain]  # kappa = 2 eps / t (beam theory)
         return ConditionedBlock(
-            t=frame.times(),
+            t=times,
             alpha=si[:, self._i_alpha],
             lift=lift,
             curvature=kappa,
             dynamic_pressure=q,
             si=si,
-            seq=frame.seq,
+            seq=seq,
             discontinuity=discontinuity,
         )
 

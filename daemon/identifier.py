@@ -397,6 +397,19 @@ class OnlineIdentifier:
         return int(self.A.shape[0])
 
     # ----------------------------------------------------------------------------------------
+    def samples_to_boundary(self, discontinuity: bool = False) -> int:
+        """How many samples of the next block to pass before this stage processes its block.
+
+        The pipeline cuts incoming blocks there (:meth:`Pipeline.process`), so that every stage
+        after this one sees the same pieces, and processes at the same samples, however the
+        source cut its frames. After a discontinuity the samples gathered so far are processed
+        first; the block that follows is then kept one sample short of a full block, so that one
+        :meth:`update` processes at most once.
+        """
+        if discontinuity:
+            return max(1, self.block_n - 1) if self.pending else self.block_n
+        return max(1, self.block_n - self.pending_n)
+
     def update(self, block: ConditionedBlock) -> list[Output]:
         out: list[Output] = []
         if not self.announced:

@@ -24,8 +24,10 @@ import time
 from dataclasses import dataclass, field
 from typing import Any, Callable, Protocol
 
+import numpy as np
+
 from wingwatch.daemon import replaylog as rl
-from wingwatch.daemon.codec import TOPICS, encode_message
+from wingwatch.daemon.codec import TOPICS, SensorFrame, encode_message
 from wingwatch.daemon.condition import ChannelMap, ConditionedBlock
 from wingwatch.daemon.config import Config
 from wingwatch.daemon.ingest import Ingest, IngestVerdict
@@ -97,30 +99,84 @@ class Pipeline:
 
     def process(self, topic: bytes, payload: bytes, *, parts_ok: bool = True
                 ) -> tuple[IngestVerdict, list[Output]]:
-        if parts_ok and topic.startswith(PLAN_PREFIX):
-            return self._plan(topic, payload), []
-        verdict = self.ingest.update(topic, payload, parts_ok=parts_ok)
-        outputs: list[Output] = []
-        frame = verdict.frame
-        if frame is None:
-            return verdict, outputs
-        if verdict.discontinuity:
-            outputs.append(Output("event", {
-                "t": frame.t0,
-                "event": "restart" if verdict.restart else ("gap" if verdict.gap_frames else "time_gap"),
-                "stream": frame.stream,
-                "seq": frame.seq,
-                "missing_frames": verdict.gap_frames,
-                "missing_s": verdict.time_gap_s,
-            }))
-        if self.first_sample_t is None:
-            self.first_sample_t = frame.t0
-        self.last_sample_t = frame.t_end
-        if self.channel_map.accepts(frame):
-            block = self.channel_map.apply(frame, verdict.discontinuity)
+        """Judge one inbound message and run the stages on its samples."""
+        return self.process_many([(topic, payload, parts_ok)])[0]
+
+    def process_many(self, messages: list[tuple[bytes, bytes, bool]], max_batch: int = 1 << 16
+                     ) -> list[tuple[IngestVerdict, list[Output]]]:
+        """Judge consecutive messages ``(topic, payload, parts_ok)`` one by one, and run the
+        stages on the samples of consecutive accepted frames at once.
+
+        Each message gets exactly the verdict and the outputs that :meth:`process` would have
+        given it one at a time: the stages see the same pieces (they are cut at the stages'
+        boundaries, not at the frames), and an output is handed to the message whose samples
+        completed the piece it came from. A plan, a discontinuity or ``max_batch`` samples end
+        a run of frames. Replay uses it: it saves the per-frame work of the channel map and the
+        stages.
+        """
+        results: list[tuple[IngestVerdict, list[Output]]] = []
+        run: list[tuple[int, SensorFrame]] = []  # (message index, frame), contiguous samples
+        run_n = 0
+        run_disc = False
+        for topic, payload, parts_ok in messages:
+            if parts_ok and topic.startswith(PLAN_PREFIX):
+                self._run_stages(run, run_disc, results)  # the plan takes effect after them
+                run, run_n = [], 0
+                results.append((self._plan(topic, payload), []))
+                continue
+            verdict = self.ingest.update(topic, payload, parts_ok=parts_ok)
+            outputs: list[Output] = []
+            results.append((verdict, outputs))
+            frame = verdict.frame
+            if frame is None:
+                continue
+            if verdict.discontinuity:
+                self._run_stages(run, run_disc, results)
+                run, run_n = [], 0
+                outputs.append(Output("event", {
+                    "t": frame.t0,
+                    "event": "restart" if verdict.restart else ("gap" if verdict.gap_frames else "time_gap"),
+                    "stream": frame.stream,
+                    "seq": frame.seq,
+                    "missing_frames": verdict.gap_frames,
+                    "missing_s": verdict.time_gap_s,
+                }))
+            if self.first_sample_t is None:
+                self.first_sample_t = frame.t0
+            self.last_sample_t = frame.t_end
+            if self.channel_map.accepts(frame):
+                if not run:
+                    run_disc = verdict.discontinuity
+                run.append((len(results) - 1, frame))
+                run_n += frame.n_samples
+                if run_n >= max_batch:
+                    self._run_stages(run, run_disc, results)
+                    run, run_n = [], 0
+        self._run_stages(run, run_disc, results)
+        return results
+
+    def _run_stages(self, run: list[tuple[int, SensorFrame]], discontinuity: bool,
+                    results: list[tuple[IngestVerdict, list[Output]]]) -> None:
+        """Condition a run of frames and pass it through the stages, cut at their boundaries
+        (``samples_to_boundary``); outputs go to the message holding a piece's last sample."""
+        if not run:
+            return
+        block = self.channel_map.apply_many([f for _, f in run], discontinuity)
+        cuts = [s.samples_to_boundary for s in self.stages if hasattr(s, "samples_to_boundary")]
+        ends = np.cumsum([f.n_samples for _, f in run])
+        done = 0
+        while True:
+            k = block.n
+            for cut in cuts:
+                k = min(k, cut(block.discontinuity))
+            piece, rest = (block, None) if k >= block.n else block.split(k)
+            done += piece.n
+            outputs = results[run[int(np.searchsorted(ends, done))][0]][1]
             for stage in self.stages:
-                outputs.extend(stage.update(block))
-        return verdict, outputs
+                outputs.extend(stage.update(piece))
+            if rest is None:
+                return
+            block = rest
 
     def _plan(self, topic: bytes, payload: bytes) -> IngestVerdict:
         """A controller's announced alpha plan: validated, counted, handed to the stages that
@@ -209,12 +265,33 @@ class Session:
     _last_status_counters: dict[str, int] = field(default_factory=dict)
     _last_status_wall: float | None = None
 
-    def inbound(self, parts: list[bytes], t_recv: float) -> IngestVerdict:
-        """Handle one inbound multipart message received at wall time ``t_recv``."""
+    @staticmethod
+    def _split(parts: list[bytes]) -> tuple[bytes, bytes, bool]:
         parts_ok = len(parts) == 2
         topic = parts[0] if parts else b""
         payload = parts[1] if parts_ok else b"".join(parts[1:])
+        return topic, payload, parts_ok
+
+    def inbound(self, parts: list[bytes], t_recv: float) -> IngestVerdict:
+        """Handle one inbound multipart message received at wall time ``t_recv``."""
+        topic, payload, parts_ok = self._split(parts)
         verdict, outputs = self.pipeline.process(topic, payload, parts_ok=parts_ok)
+        self._handled(topic, payload, parts_ok, t_recv, verdict, outputs)
+        return verdict
+
+    def inbound_many(self, messages: list[list[bytes]], t_recv: list[float]) -> list[IngestVerdict]:
+        """Handle consecutive inbound messages at once (:meth:`Pipeline.process_many`): the
+        same verdicts, records and outputs, in the same order, as :meth:`inbound` one by one."""
+        split = [self._split(parts) for parts in messages]
+        results = self.pipeline.process_many(split)
+        for (topic, payload, parts_ok), t, (verdict, outputs) in zip(split, t_recv, results,
+                                                                     strict=True):
+            self._handled(topic, payload, parts_ok, t, verdict, outputs)
+        return [v for v, _ in results]
+
+    def _handled(self, topic: bytes, payload: bytes, parts_ok: bool, t_recv: float,
+                 verdict: IngestVerdict, outputs: list[Output]) -> None:
+        """Record one judged message, then emit its outputs."""
         if self.recorder is not None:
             if verdict.accepted and verdict.plan:
                 self.recorder.append(rl.KIND_PLAN, topic, payload, t_recv)
@@ -228,15 +305,20 @@ class Session:
             self.first_wall = t_recv
         for out in outputs:
             self.emit(out, t_recv)
-        return verdict
+
+    @staticmethod
+    def _record_parts(rec: rl.Record) -> list[bytes]:
+        if rec.kind == rl.KIND_REJECTED and rec.flags & 1:
+            return [rec.topic, rec.payload, b""]  # re-create the wrong part count
+        return [rec.topic, rec.payload]
 
     def replay_record(self, rec: rl.Record) -> IngestVerdict:
         """Feed a recorded inbound record back through the same path (t_recv as recorded)."""
-        if rec.kind == rl.KIND_REJECTED and rec.flags & 1:
-            parts = [rec.topic, rec.payload, b""]  # re-create the wrong part count
-        else:
-            parts = [rec.topic, rec.payload]
-        return self.inbound(parts, rec.t_recv)
+        return self.inbound(self._record_parts(rec), rec.t_recv)
+
+    def replay_records(self, recs: list[rl.Record]) -> list[IngestVerdict]:
+        """:meth:`replay_record` for consecutive records at once (:meth:`inbound_many`)."""
+        return self.inbound_many([self._record_parts(r) for r in recs], [r.t_recv for r in recs])
 
     def emit(self, out: Output, t_wall: float) -> None:
         n = self.pub_seq.get(out.kind, 0)  # per kind: decision outputs stay deterministic

@@ -233,6 +233,9 @@ class ScriptedOutputs:
     def reset(self):
         self.n = 0
 
+    def samples_to_boundary(self, discontinuity=False):
+        return 10  # one step of the script per 10 samples (one frame here), however batched
+
     def update(self, block):
         t = float(block.t[-1])
         n, out = self.n, []

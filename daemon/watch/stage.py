@@ -196,6 +196,7 @@ class Watcher:
 
     def __init__(self, config: Config, identifier: OnlineIdentifier) -> None:
         self.config = config
+        self._i_q = config.conditioning_stream.channels.index(config.outputs.lift.dynamic_pressure)
         self.ident = identifier
         self.settings = s = WatchSettings.from_config(config)
         self.limit = config.outputs.curvature.limit_per_m
@@ -259,6 +260,10 @@ class Watcher:
         self.flutter: dict[str, Any] | None = None  # last flutter-margin state (watch message)
         self.plan: tuple[float, float, np.ndarray] | None = None
         self.q_recent = float("nan")
+        # Channels of the samples since the identifier last processed a block (its next block):
+        # the sensor-health and dynamic-pressure figures are over the identifier's block, never
+        # over whichever frame happened to complete it.
+        self.acc_si: list[np.ndarray] = []
         self.base: np.ndarray | None = None  # coefficient baseline (start of the run)
         self.base_sd: np.ndarray | None = None
         self.base_acc: list[np.ndarray] = []
@@ -289,10 +294,20 @@ class Watcher:
         out: list[Output] = []
         lb = self.ident.last_block
         if lb is None or lb.get("_seen"):
+            self.acc_si.append(block.si)
             self._restart_on(block)
             return out  # the identifier is still gathering this block
         lb["_seen"] = True
-        q = block.dynamic_pressure
+        # The pipeline cuts blocks at the identifier's boundaries (Pipeline.process), so this
+        # block either completed the identifier's block or, after a discontinuity, starts the
+        # next one (the identifier processed what it had first).
+        if block.discontinuity and self.ident.pending_n:
+            si = self._take_acc()
+            self.acc_si.append(block.si)
+        else:
+            self.acc_si.append(block.si)
+            si = self._take_acc()
+        q = si[:, self._i_q]
         if q.size:
             self.q_recent = float(np.nanmean(q))
         t_end = float(lb["t"][-1])
@@ -306,7 +321,7 @@ class Watcher:
         ok = lb["ok"]
         self.win_a[0] += float(np.sum(lb["a"][ok]))
         self.win_a[1] += int(np.count_nonzero(ok))
-        self._sensor_health(block, lb)
+        self._sensor_health(si)
         if self.ident.candidate_seq != self.seen_seq:
             self.seen_seq = self.ident.candidate_seq
             out.extend(self._evaluate_window(t_end))
@@ -348,9 +363,15 @@ class Watcher:
         self.ref_sq += np.sum(e * e, axis=0)
         self.ref_n += e.shape[0]
 
-    def _sensor_health(self, block: ConditionedBlock, lb: dict[str, Any]) -> None:
+    def _take_acc(self) -> np.ndarray:
+        acc, self.acc_si = self.acc_si, []
+        if not acc:
+            return np.zeros((0, len(self.config.conditioning_stream.channels)))
+        return acc[0] if len(acc) == 1 else np.concatenate(acc)
+
+    def _sensor_health(self, si: np.ndarray) -> None:
+        """Sample-to-sample noise of every channel over the identifier's block ``si``."""
         names = self.config.conditioning_stream.channels
-        si = block.si
         if si.shape[0] < 3:
             return
         noise = np.std(np.diff(si, axis=0), axis=0)  # sample-to-sample noise per channel
@@ -808,6 +829,8 @@ class Watcher:
             "zero_info": {k: (dict(v) if isinstance(v, dict) else v)
                           for k, v in self.zero_info.items()},
             "damp_hist": list(self.damp_hist), "q_recent": self.q_recent,
+            "acc_si": (np.concatenate(self.acc_si) if self.acc_si
+                       else np.zeros((0, len(self.config.conditioning_stream.channels)))),
             "flutter_hist": list(self.flutter_hist), "flutter_pair": self.flutter_pair,
             "flutter": None if self.flutter is None else dict(self.flutter),
             "base": None if self.base is None else self.base.copy(),
@@ -860,6 +883,9 @@ class Watcher:
         fl = st.get("flutter")
         self.flutter = None if fl is None else dict(fl)
         self.q_recent = float(st["q_recent"])
+        acc = np.array(st["acc_si"], dtype=float).reshape(
+            -1, len(self.config.conditioning_stream.channels))
+        self.acc_si = [acc] if acc.shape[0] else []
         self.base = None if st["base"] is None else np.array(st["base"], dtype=float)
         self.base_level = (None if st["base_level"] is None
                            else np.array(st["base_level"], dtype=float))
