@@ -42,6 +42,7 @@ __all__ = [
     "trend_arrow",
     "gauge",
     "fmt_num",
+    "fmt_change",
     "listen",
     "configure_parser",
     "run",
@@ -95,6 +96,26 @@ def fmt_num(x: Any, digits: int = 4) -> str:
     if 1e-3 <= abs(x) < 1e5:
         return f"{x:.{digits}g}"
     return f"{x:.{max(1, digits - 2)}e}"
+
+
+def fmt_change(cur: float, ref: float, interval: Any = None) -> str:
+    """The change of a coefficient from its reference: in per cent, or as a signed difference
+    when a percentage says nothing (a reference closer to zero than the current interval's
+    half-width, or a change of ten times the reference or more).
+
+    >>> fmt_change(2.2, 2.0), fmt_change(-0.044, -9.37e-05, [-0.06, -0.028])
+    ('+10.0%', 'Δ-0.0439')
+    >>> fmt_change(1.0, 0.0), fmt_change(50.0, 1.0)
+    ('Δ+1', 'Δ+49')
+    """
+    d = cur - ref
+    half = None
+    if (isinstance(interval, (list, tuple)) and len(interval) == 2
+            and all(_finite(v) for v in interval)):
+        half = 0.5 * abs(interval[1] - interval[0])
+    if ref == 0 or (half is not None and abs(ref) < half) or abs(d) >= 10 * abs(ref):
+        return "Δ" + ("+" if d >= 0 else "") + fmt_num(d, 3)
+    return f"{d / abs(ref) * 100:+.1f}%"
 
 
 def sparkline(values: Iterable[float], width: int) -> str:
@@ -630,11 +651,10 @@ def _coefficient_block(state: MonitorState, width: int) -> list[RenderableType]:
             r = (ref.get(key) or {}).get(out_key)
             iv = (ivs.get(key) or {}).get(out_key)
             change = Text("—", style=_S["dim"])
-            if _finite(cur) and _finite(r) and r != 0:
-                pct = (cur - r) / abs(r) * 100
+            if _finite(cur) and _finite(r):
                 outside = (isinstance(iv, (list, tuple)) and len(iv) == 2
                            and all(_finite(v) for v in iv) and not (iv[0] <= r <= iv[1]))
-                change = Text(f"{pct:+.1f}%", style=_S["attn"] if outside else "")
+                change = Text(fmt_change(cur, r, iv), style=_S["attn"] if outside else "")
             q = f"{key}.{out_key}"
             tab.add_row(label if j == 0 else "", out_label,
                         Text(fmt_num(r), style=_S["dim"]), Text(fmt_num(cur), style=_S["value"]),
