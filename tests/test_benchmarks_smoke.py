@@ -51,3 +51,25 @@ def test_quick_rig_run_writes_results(tmp_path):
     assert len(stamped) == 1
     md = (tmp_path / "latest.md").read_text()
     assert "| rig |" in md and "Python" in md and "cores" in md
+
+
+def test_flow_change_score_counts_containment_and_ratios():
+    """The flow-change check's scoring on two hand-made runs: the long-run value is the mean
+    over runs, the gap is against the steady value, and an interval counts when it holds it."""
+    from benchmarks.flow_change_check import score
+
+    def run(b, a, lo, hi):
+        out = {}
+        for phase, v, iv in (("before", b, (b - 0.1, b + 0.1)), ("after", a, (lo, hi))):
+            out[phase] = {"value": {"lift": v, "curvature": 2 * v},
+                          "interval": {"lift": list(iv), "curvature": [2 * iv[0], 2 * iv[1]]}}
+        return out
+
+    rows = [run(3.5, 3.3, 3.2, 3.6), run(3.5, 3.2, 3.1, 3.3)]
+    steady = {"before": {"lift": 3.7, "curvature": 7.4}, "after": {"lift": 3.5, "curvature": 7.0}}
+    p = score(rows, steady)["lift"]
+    assert p["long_run"] == {"before": 3.5, "after": 3.25}
+    assert math.isclose(p["gap_to_steady_pct"]["after"], 100 * (3.25 / 3.5 - 1))
+    assert p["after_interval_contains"] == {"steady": 1, "long_run": 2, "cases": 2}
+    assert math.isclose(p["ratio_after_before"]["identified"], (3.3 / 3.5 + 3.2 / 3.5) / 2)
+    assert math.isclose(p["ratio_after_before"]["steady"], 3.5 / 3.7)
