@@ -322,7 +322,9 @@ def test_watch_state_round_trips_exactly_and_reset_equals_fresh(tmp_path, refere
     cfg = dataclasses.replace(cfg, watch={**cfg.watch, "baseline_s": 40.0})
     ref = load_model(reference)
     records = [r for r in rl.LogReader.open(log) if r.kind in (rl.KIND_INBOUND, rl.KIND_REJECTED)]
-    cut = int(113.0 * 100)  # 10-sample frames at 1 kHz: frame index = 100 x time
+    # 10-sample frames at 1 kHz: frame index = 100 x time; three frames into an identifier
+    # block, so that the watcher holds samples of a block not yet processed
+    cut = int(113.0 * 100) + 3
     out_a: list[bytes] = []
     s1 = Session(make_pipeline(cfg, ref), sink=lambda t, p: out_a.append(p))
     for rec in records[:cut]:
@@ -330,6 +332,7 @@ def test_watch_state_round_trips_exactly_and_reset_equals_fresh(tmp_path, refere
     w1 = s1.pipeline.stages[-1]
     assert isinstance(w1, Watcher)
     assert w1.base is not None and w1.cusum_zero.statistic[0] > 0  # the new state is live
+    assert sum(a.shape[0] for a in w1.acc_si) == 30
 
     def packed(state):
         return msgpack.packb(_to_wire(state), use_bin_type=True)
