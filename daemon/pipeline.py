@@ -163,7 +163,7 @@ class Pipeline:
             return
         block = self.channel_map.apply_many([f for _, f in run], discontinuity)
         cuts = [s.samples_to_boundary for s in self.stages if hasattr(s, "samples_to_boundary")]
-        ends = np.cumsum([f.n_samples for _, f in run])
+        ends = np.cumsum([f.n_samples for _, f in run]) if len(run) > 1 else None
         done = 0
         while True:
             k = block.n
@@ -171,7 +171,8 @@ class Pipeline:
                 k = min(k, cut(block.discontinuity))
             piece, rest = (block, None) if k >= block.n else block.split(k)
             done += piece.n
-            outputs = results[run[int(np.searchsorted(ends, done))][0]][1]
+            at = 0 if ends is None else int(np.searchsorted(ends, done))
+            outputs = results[run[at][0]][1]
             for stage in self.stages:
                 outputs.extend(stage.update(piece))
             if rest is None:
