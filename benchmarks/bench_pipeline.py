@@ -83,12 +83,20 @@ def _cum(stats: pstats.Stats, suffix: str, func: str, caller: tuple[str, str] | 
     return total
 
 
+#: Pipeline methods that call the stages (ingest, channel map, identifier, watcher) directly.
+_STAGE_CALLERS = ("process", "process_many", "_run_stages")
+
+
 def _stage_times(stats: pstats.Stats) -> list[tuple[str, float]]:
-    """Time of everything Pipeline.process calls directly (the stages), largest first."""
+    """Time of everything the pipeline calls directly (the stages), largest first."""
     out = []
     for (fn, line, name), (_cc, _nc, _tt, _ct, callers) in stats.stats.items():
+        path = fn.replace("\\", "/")
+        if path.endswith("daemon/pipeline.py") or "/daemon/" not in path:
+            continue  # the pipeline's own methods calling each other; numpy helpers
         for (cfn, _cl, cname), val in callers.items():
-            if cfn.replace("\\", "/").endswith("daemon/pipeline.py") and cname == "process":
+            if (cfn.replace("\\", "/").endswith("daemon/pipeline.py")
+                    and cname in _STAGE_CALLERS):
                 short = "/".join(Path(fn).parts[-2:]) if fn.startswith("/") else fn
                 out.append((f"{short} {name}", val[3]))
     return sorted(out, key=lambda kv: kv[1], reverse=True)
@@ -105,9 +113,11 @@ def profile_breakdown(path, cfg, ref, top: int = 12) -> tuple[list[list], list[l
     prof.disable()
     stats = pstats.Stats(prof)
     total = stats.total_tt
-    inbound = _cum(stats, "daemon/pipeline.py", "inbound")
+    inbound = (_cum(stats, "daemon/pipeline.py", "inbound_many")
+               + _cum(stats, "daemon/pipeline.py", "inbound", ("daemon/pipeline.py",
+                                                                  "replay_record")))
     parts: list[tuple[str, float]] = [
-        ("log reading and replay loop (outside Session.inbound)", total - inbound),
+        ("log reading and replay loop (outside Session.inbound_many)", total - inbound),
         ("output encoding and sink (Session.emit)", _cum(stats, "daemon/pipeline.py", "emit")),
     ]
     for label, v in _stage_times(stats):
