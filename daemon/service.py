@@ -36,6 +36,7 @@ log = logging.getLogger("wingwatch.daemon")
 
 _POLL_MS = 50
 _DRAIN_MAX = 1000  # messages handled per poll wake-up before the loop looks at its clock
+_BATCH_MAX = 32  # queued messages judged and processed together (Session.inbound_many)
 
 
 def make_pipeline(config: Config, reference: Any = None, *, identify: bool = True,
@@ -302,16 +303,31 @@ class Daemon:
                     continue
                 if self.rep in ready:
                     self._serve_snapshot()
-                for _ in range(_DRAIN_MAX):
-                    try:
-                        parts = self.sub.recv_multipart(flags=zmq.NOBLOCK)
-                    except zmq.Again:
+                # What is queued is taken in small batches (Session.inbound_many: the same
+                # verdicts, records and outputs as one by one); when the daemon keeps up a batch
+                # is one message, when it falls behind the per-frame work shrinks.
+                received = 0
+                while received < _DRAIN_MAX:
+                    batch: list[list[bytes]] = []
+                    stamps: list[float] = []
+                    while len(batch) < _BATCH_MAX and received < _DRAIN_MAX:
+                        if max_messages is not None and self.messages + len(batch) >= max_messages:
+                            break
+                        try:
+                            batch.append(self.sub.recv_multipart(flags=zmq.NOBLOCK))
+                        except zmq.Again:
+                            break
+                        stamps.append(time.time())
+                        received += 1
+                    if not batch:
                         break
-                    self.session.inbound(parts, time.time())
-                    self.messages += 1
+                    self.session.inbound_many(batch, stamps)
+                    self.messages += len(batch)
                     if max_messages is not None and self.messages >= max_messages:
                         self.stop_event.set()
                         break
+                    if len(batch) < _BATCH_MAX:
+                        break  # the queue is empty
         finally:
             self.session.status(time.time(), {**self._extra_status(), "final": True})
         return self.summary()

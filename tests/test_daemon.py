@@ -191,3 +191,50 @@ def test_kill_9_of_the_daemon_then_inspect(tmp_path, cfg_path, zctx):
         assert key in s
     assert s["channels"] == list(CH) and s["streams"] == ["rig"]
     assert s["duration_s"] == pytest.approx(s["samples"] / 1000.0)
+
+
+def test_daemon_behind_takes_batches_and_replays_identically(cfg, zctx):
+    """Frames sent in bursts faster than the daemon handles them queue up; the daemon takes
+    them in batches (Session.inbound_many), and the replay of its log, one batch size or
+    another, reproduces every recorded decision byte for byte."""
+    from test_identifier import frames, motion, outputs
+
+    from wingwatch.daemon.replay import compare_outputs, recorded_outputs, replay_log
+
+    n = 30000  # 30 s at 1 kHz: slow updates, models accepted
+    alpha, ad, add = motion(n, seed=4)
+    msgs = list(frames(alpha, outputs(alpha, ad, add), noise=1e-3))
+    d = Daemon(cfg)
+    sizes: list[int] = []
+    many = d.session.inbound_many
+
+    def spy(messages, t_recv):
+        sizes.append(len(messages))
+        return many(messages, t_recv)
+
+    d.session.inbound_many = spy
+    sub = zctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.LINGER, 0)
+    sub.setsockopt(zmq.SUBSCRIBE, b"ww.status")
+    sub.connect(cfg.endpoints.publish)
+    th = threading.Thread(target=d.run, kwargs={"duration_s": 60}, daemon=True)
+    th.start()
+    pub = FramePublisher(cfg.endpoints.sensor, channels=CH, rate_hz=1000.0, context=zctx)
+    try:
+        assert pub.wait_ready(5.0)
+        for i, (topic, payload) in enumerate(msgs):
+            pub.send_raw(topic, payload)
+            if i % 200 == 199:
+                time.sleep(0.05)  # bursts of 200 frames (2 s of data), below the queue limits
+        recv_until(sub, lambda p: decode_message(p[1])["counters"]["frames"] >= len(msgs), 30.0)
+    finally:
+        d.stop()
+        th.join(10)
+        pub.close()
+        sub.close()
+        d.close()
+    assert not th.is_alive()
+    assert max(sizes) > 1 and sum(sizes) == len(msgs)
+    rec = recorded_outputs(d.log_path)
+    assert sum(1 for o in rec if o.topic.startswith(b"ww.model")) >= 3
+    assert compare_outputs(rec, replay_log(d.log_path).outputs) is None
