@@ -46,6 +46,7 @@ __all__ = [
     "resample_raw",
     "target",
     "table",
+    "check_setup",
 ]
 
 REPO = Path(__file__).resolve().parent.parent
@@ -200,3 +201,19 @@ def resample_raw(samples, rate_from: float, rate_to: float):
     m = int(math.floor((n - 1) / rate_from * rate_to)) + 1
     t_to = np.arange(m) / rate_to
     return np.column_stack([np.interp(t_to, t_from, samples[:, j]) for j in range(samples.shape[1])])
+
+
+def check_setup(out: str | None, config: str | None, prefix: str):
+    """What every check against the rig's truth starts with: its output folder (``out``, or a
+    fresh temporary one named ``prefix``...), the daemon configuration (``config``, or the
+    shipped one) and the reference model calibrated on the rig as the demo does (once per
+    folder). Returns ``(out, config, reference)``."""
+    from wingwatch.daemon.config import load_config
+    from wingwatch.daemon.demo import ensure_reference
+    from wingwatch.daemon.modelfile import load_model
+
+    folder = Path(out or tempfile.mkdtemp(prefix=prefix))
+    folder.mkdir(parents=True, exist_ok=True)
+    cfg = load_config(config) if config else load_config()
+    ref = load_model(ensure_reference(folder / "ref", cfg, say=lambda m: print(m, file=sys.stderr)))
+    return folder, cfg, ref

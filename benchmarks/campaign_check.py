@@ -16,11 +16,15 @@ import argparse
 import json
 import os
 import sys
-import tempfile
 import time
 from pathlib import Path
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+if __package__ in (None, ""):
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
+from benchmarks import check_setup  # noqa: E402
 
 import numpy as np  # noqa: E402
 
@@ -36,20 +40,14 @@ def main(argv: list[str] | None = None) -> int:
     a = ap.parse_args(argv)
 
     from wingwatch.daemon.codec import SensorFrame, decode_message, encode_sensor_frame
-    from wingwatch.daemon.config import load_config
-    from wingwatch.daemon.demo import ensure_reference
-    from wingwatch.daemon.modelfile import load_model
     from wingwatch.daemon.replay import replay_log
     from wingwatch.daemon.replaylog import KIND_WARNING
     from wingwatch.daemon.rig.scenario import load_scenario
     from wingwatch.daemon.rig.source import VirtualRig
     from wingwatch.daemon.service import make_pipeline, record_frames
 
-    out = Path(a.out or tempfile.mkdtemp(prefix="ww-campaign-"))
-    out.mkdir(parents=True, exist_ok=True)
-    cfg = load_config(a.config) if a.config else load_config()
     t0 = time.perf_counter()
-    ref = load_model(ensure_reference(out / "ref", cfg, say=lambda m: print(m, file=sys.stderr)))
+    out, cfg, ref = check_setup(a.out, a.config, "ww-campaign-")
     rig = VirtualRig(load_scenario("campaign"), seed=a.seed, duration_s=a.duration)
     kappa_true, t_true = [], []
 

@@ -26,7 +26,6 @@ import argparse
 import json
 import os
 import sys
-import tempfile
 from pathlib import Path
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
@@ -35,6 +34,8 @@ if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 import numpy as np  # noqa: E402
+
+from benchmarks import check_setup  # noqa: E402
 
 COEFS = ("quasi_steady", "rate", "added_mass")
 OUTS = ("lift", "curvature")
@@ -101,14 +102,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--out", default=None, help="folder for the reference and results")
     a = ap.parse_args(argv)
 
-    from wingwatch.daemon.config import load_config
-    from wingwatch.daemon.demo import ensure_reference
-    from wingwatch.daemon.modelfile import load_model
 
-    out = Path(a.out or tempfile.mkdtemp(prefix="ww-coverage-"))
-    out.mkdir(parents=True, exist_ok=True)
-    cfg = load_config(a.config) if a.config else load_config()
-    ref = load_model(ensure_reference(out / "ref", cfg, say=lambda m: print(m, file=sys.stderr)))
+    out, cfg, ref = check_setup(a.out, a.config, "ww-coverage-")
     rows = []
     for seed in range(1, a.seeds + 1):
         r = run_seed(seed, a.duration, ref, cfg, out, 14 if a.same_manoeuvre else None)

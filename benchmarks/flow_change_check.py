@@ -32,7 +32,6 @@ import argparse
 import json
 import os
 import sys
-import tempfile
 from pathlib import Path
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
@@ -41,6 +40,8 @@ if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 import numpy as np  # noqa: E402
+
+from benchmarks import check_setup  # noqa: E402
 
 OUTS = ("lift", "curvature")
 T_CHANGE = 150.0  # the campaign's flow-speed event
@@ -135,15 +136,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--out", default=None, help="folder for the reference and results")
     a = ap.parse_args(argv)
 
-    from wingwatch.daemon.config import load_config
-    from wingwatch.daemon.demo import ensure_reference
-    from wingwatch.daemon.modelfile import load_model
     from wingwatch.daemon.rig.scenario import load_scenario
 
-    out = Path(a.out or tempfile.mkdtemp(prefix="ww-flow-change-"))
-    out.mkdir(parents=True, exist_ok=True)
-    cfg = load_config(a.config) if a.config else load_config()
-    ref = load_model(ensure_reference(out / "ref", cfg, say=lambda m: print(m, file=sys.stderr)))
+    out, cfg, ref = check_setup(a.out, a.config, "ww-flow-change-")
     sc = load_scenario("campaign")
     alpha = float(sc.motion.mean_deg)
     speeds = {"before": float(sc.flow_speed_m_s),

@@ -24,12 +24,16 @@ import argparse
 import json
 import os
 import sys
-import tempfile
 import time
 from collections import Counter
 from pathlib import Path
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+if __package__ in (None, ""):
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
+from benchmarks import check_setup  # noqa: E402
 
 DRIFT_KINDS = ("coefficient_drift", "mode_drift", "stale_model")
 
@@ -78,16 +82,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--keep-logs", action="store_true", help="keep the rig logs (about 70 MB each)")
     a = ap.parse_args(argv)
 
-    from wingwatch.daemon.config import load_config
-    from wingwatch.daemon.demo import ensure_reference
-    from wingwatch.daemon.modelfile import load_model
     from wingwatch.daemon.watch.stage import WatchSettings
 
     seeds = [int(s) for s in a.seeds.split(",") if s.strip()]
-    out = Path(a.out or tempfile.mkdtemp(prefix="ww-stationary-"))
-    out.mkdir(parents=True, exist_ok=True)
-    cfg = load_config(a.config) if a.config else load_config()
-    ref = load_model(ensure_reference(out / "ref", cfg, say=lambda m: print(m, file=sys.stderr)))
+    out, cfg, ref = check_setup(a.out, a.config, "ww-stationary-")
     rows = []
     for seed in seeds:
         r = run_seed(seed, a.duration, ref, cfg, out, a.keep_logs)
