@@ -3,6 +3,7 @@ a kill -9 of the daemon process leaves a log that inspect reads with the right c
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import signal
@@ -58,17 +59,32 @@ def bad_messages():
     }
 
 
-def test_daemon_ingests_records_and_publishes_status(cfg, zctx):
-    d = Daemon(cfg)
+@contextlib.contextmanager
+def running(d, cfg, zctx, subscribe: bytes, duration_s: float):
+    """The daemon ``d`` on a thread, a subscriber to its ``subscribe`` topics and a frame
+    publisher into it; everything stopped and closed on the way out (bounded joins)."""
     sub = zctx.socket(zmq.SUB)
     sub.setsockopt(zmq.LINGER, 0)
-    sub.setsockopt(zmq.SUBSCRIBE, b"ww.")
+    sub.setsockopt(zmq.SUBSCRIBE, subscribe)
     sub.connect(cfg.endpoints.publish)
-    th = threading.Thread(target=d.run, kwargs={"duration_s": 30}, daemon=True)
+    th = threading.Thread(target=d.run, kwargs={"duration_s": duration_s}, daemon=True)
     th.start()
     pub = FramePublisher(cfg.endpoints.sensor, channels=CH, rate_hz=1000.0, context=zctx)
     try:
         assert pub.wait_ready(5.0)
+        yield sub, pub
+    finally:
+        d.stop()
+        th.join(10)
+        pub.close()
+        sub.close()
+        d.close()
+    assert not th.is_alive()
+
+
+def test_daemon_ingests_records_and_publishes_status(cfg, zctx):
+    d = Daemon(cfg)
+    with running(d, cfg, zctx, b"ww.", 30) as (sub, pub):
         sent = 0
         for i in range(100):
             if i == 50:
@@ -104,13 +120,6 @@ def test_daemon_ingests_records_and_publishes_status(cfg, zctx):
         assert len(events) == 1
         assert events[0]["event"] == "gap" and events[0]["missing_frames"] == 3
         assert events[0]["seq"] == 53 and events[0]["t"] == pytest.approx(0.53)
-    finally:
-        d.stop()
-        th.join(10)
-        pub.close()
-        sub.close()
-        d.close()
-    assert not th.is_alive()
     s = summarise_log(d.log_path)
     assert s["accepted"] == sent + 1 and s["samples"] == (sent + 1) * 10
     assert s["rejected"] == 1 + len(bad) + 1
@@ -213,27 +222,12 @@ def test_daemon_behind_takes_batches_and_replays_identically(cfg, zctx):
         return many(messages, t_recv)
 
     d.session.inbound_many = spy
-    sub = zctx.socket(zmq.SUB)
-    sub.setsockopt(zmq.LINGER, 0)
-    sub.setsockopt(zmq.SUBSCRIBE, b"ww.status")
-    sub.connect(cfg.endpoints.publish)
-    th = threading.Thread(target=d.run, kwargs={"duration_s": 60}, daemon=True)
-    th.start()
-    pub = FramePublisher(cfg.endpoints.sensor, channels=CH, rate_hz=1000.0, context=zctx)
-    try:
-        assert pub.wait_ready(5.0)
+    with running(d, cfg, zctx, b"ww.status", 60) as (sub, pub):
         for i, (topic, payload) in enumerate(msgs):
             pub.send_raw(topic, payload)
             if i % 200 == 199:
                 time.sleep(0.05)  # bursts of 200 frames (2 s of data), below the queue limits
         recv_until(sub, lambda p: decode_message(p[1])["counters"]["frames"] >= len(msgs), 30.0)
-    finally:
-        d.stop()
-        th.join(10)
-        pub.close()
-        sub.close()
-        d.close()
-    assert not th.is_alive()
     assert max(sizes) > 1 and sum(sizes) == len(msgs)
     rec = recorded_outputs(d.log_path)
     assert sum(1 for o in rec if o.topic.startswith(b"ww.model")) >= 3
