@@ -400,7 +400,7 @@ class OnlineIdentifier:
     def samples_to_boundary(self, discontinuity: bool = False) -> int:
         """How many samples of the next block to pass before this stage processes its block.
 
-        The pipeline cuts incoming blocks there (:meth:`Pipeline.process`), so that every stage
+        The pipeline cuts incoming blocks there (:meth:`Pipeline.process_many`), so that every stage
         after this one sees the same pieces, and processes at the same samples, however the
         source cut its frames. After a discontinuity the samples gathered so far are processed
         first; the block that follows is then kept one sample short of a full block, so that one

@@ -298,7 +298,7 @@ class Watcher:
             self._restart_on(block)
             return out  # the identifier is still gathering this block
         lb["_seen"] = True
-        # The pipeline cuts blocks at the identifier's boundaries (Pipeline.process), so this
+        # The pipeline cuts blocks at the identifier's boundaries (Pipeline.process_many): this
         # block either completed the identifier's block or, after a discontinuity, starts the
         # next one (the identifier processed what it had first).
         if block.discontinuity and self.ident.pending_n:
@@ -363,11 +363,17 @@ class Watcher:
         self.ref_sq += np.sum(e * e, axis=0)
         self.ref_n += e.shape[0]
 
-    def _take_acc(self) -> np.ndarray:
-        acc, self.acc_si = self.acc_si, []
+    def _acc_array(self) -> np.ndarray:
+        """The samples held for the identifier's next block, as one array."""
+        acc = self.acc_si
         if not acc:
             return np.zeros((0, len(self.config.conditioning_stream.channels)))
         return acc[0] if len(acc) == 1 else np.concatenate(acc)
+
+    def _take_acc(self) -> np.ndarray:
+        si = self._acc_array()
+        self.acc_si = []
+        return si
 
     def _sensor_health(self, si: np.ndarray) -> None:
         """Sample-to-sample noise of every channel over the identifier's block ``si``."""
@@ -829,8 +835,7 @@ class Watcher:
             "zero_info": {k: (dict(v) if isinstance(v, dict) else v)
                           for k, v in self.zero_info.items()},
             "damp_hist": list(self.damp_hist), "q_recent": self.q_recent,
-            "acc_si": (np.concatenate(self.acc_si) if self.acc_si
-                       else np.zeros((0, len(self.config.conditioning_stream.channels)))),
+            "acc_si": self._acc_array().copy(),
             "flutter_hist": list(self.flutter_hist), "flutter_pair": self.flutter_pair,
             "flutter": None if self.flutter is None else dict(self.flutter),
             "base": None if self.base is None else self.base.copy(),
@@ -883,7 +888,7 @@ class Watcher:
         fl = st.get("flutter")
         self.flutter = None if fl is None else dict(fl)
         self.q_recent = float(st["q_recent"])
-        acc = np.array(st["acc_si"], dtype=float).reshape(
+        acc = np.array(st.get("acc_si", []), dtype=float).reshape(  # absent before 2026-12-03
             -1, len(self.config.conditioning_stream.channels))
         self.acc_si = [acc] if acc.shape[0] else []
         self.base = None if st["base"] is None else np.array(st["base"], dtype=float)
