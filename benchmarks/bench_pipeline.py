@@ -39,8 +39,7 @@ if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from benchmarks import reference_at_rate, rig_log, table, target  # noqa: E402
-from wingwatch.daemon import replay as replay_mod  # noqa: E402
-from wingwatch.daemon.replay import config_of_log, replay_log  # noqa: E402
+from wingwatch.daemon.replay import REPLAY_BATCH, config_of_log, replay_log  # noqa: E402
 from wingwatch.daemon.service import make_pipeline  # noqa: E402
 
 __all__ = ["run", "main", "config_for_rate", "profile_breakdown"]
@@ -59,13 +58,7 @@ def config_for_rate(path, rate_hz: float):
 def _replay(path, cfg, full: bool, ref, batch: int | None = None):
     """One replay; ``batch`` overrides the records handed over at once (1: one at a time)."""
     factory = (lambda c: make_pipeline(c, ref)) if full else None
-    saved = replay_mod.REPLAY_BATCH
-    if batch is not None:
-        replay_mod.REPLAY_BATCH = batch
-    try:
-        return replay_log(path, config=cfg, pipeline_factory=factory)
-    finally:
-        replay_mod.REPLAY_BATCH = saved
+    return replay_log(path, config=cfg, pipeline_factory=factory, batch=batch)
 
 
 def _cum(stats: pstats.Stats, suffix: str, func: str, caller: tuple[str, str] | None = None) -> float:
@@ -169,7 +162,7 @@ def run(quick: bool = False) -> dict:
         n_models = sum(1 for o in full.outputs if o.topic.startswith(b"ww.model"))
         for label, r in (("ingest only (Pipeline)", base),
                          ("full, one record at a time", single),
-                         (f"full (make_pipeline), records in batches of {replay_mod.REPLAY_BATCH}",
+                         (f"full (make_pipeline), records in batches of {REPLAY_BATCH}",
                           full)):
             rows.append([f"{rate / 1000:g} kHz", label, r.samples, r.source_s, r.wall_s,
                          r.samples / r.wall_s, r.realtime_factor,

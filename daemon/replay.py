@@ -217,6 +217,7 @@ def replay_log(
     record_to: str | Path | None = None,
     progress: Callable[[int, int], None] | None = None,
     pipeline_factory: Callable[[Config], Pipeline] | None = None,
+    batch: int | None = None,
 ) -> ReplayResult:
     """Replay the log at ``path`` through a fresh pipeline.
 
@@ -233,6 +234,9 @@ def replay_log(
         Also publish every output (e.g. on a PUB socket for a monitor).
     record_to : path, optional
         Record the replay as a new log file.
+    batch : int, optional
+        Records handed to the pipeline at once when replaying as fast as possible
+        (:data:`REPLAY_BATCH` by default; 1 for one at a time). The outputs do not depend on it.
     """
     if speed is not None and speed <= 0:
         raise ConfigError("--speed must be greater than zero.")
@@ -264,18 +268,19 @@ def replay_log(
         if speed is None:
             # As fast as possible: records in batches (Session.replay_records), which give
             # exactly the verdicts and outputs of one record at a time.
-            batch: list[rl.Record] = []
+            size = max(1, int(batch or REPLAY_BATCH))
+            recs: list[rl.Record] = []
             done = 0
             for rec in _records_in_window(reader, t_from, t_to):
-                batch.append(rec)
-                if len(batch) >= REPLAY_BATCH:
-                    session.replay_records(batch)
-                    done += len(batch)
-                    if progress is not None and done % (20 * REPLAY_BATCH) == 0:
+                recs.append(rec)
+                if len(recs) >= size:
+                    session.replay_records(recs)
+                    done += len(recs)
+                    if progress is not None and done % (20 * size) == 0:
                         progress(rec.offset, total)
-                    batch = []
-            if batch:
-                session.replay_records(batch)
+                    recs = []
+            if recs:
+                session.replay_records(recs)
         else:
             for i, rec in enumerate(_records_in_window(reader, t_from, t_to)):
                 if rec.kind == rl.KIND_INBOUND:

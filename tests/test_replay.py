@@ -41,6 +41,12 @@ def test_replay_reproduces_recorded_outputs(gappy_log):
     assert a.output_digest == b.output_digest
     assert [o.payload for o in a.outputs] == [o.payload for o in rec]
     assert a.samples == 1960 and a.counters["rejected"] == 1
+    # one record at a time and in batches of 7 (a gap or rejection inside a batch): the same
+    one = replay_log(gappy_log, batch=1)
+    seven = replay_log(gappy_log, batch=7)
+    assert [o.payload for o in one.outputs] == [o.payload for o in a.outputs]
+    assert [o.payload for o in seven.outputs] == [o.payload for o in a.outputs]
+    assert one.counters == seven.counters == a.counters
 
 
 def test_changed_configuration_diverges_at_first_event(gappy_log, tmp_path):
