@@ -52,6 +52,7 @@ from wingwatch.daemon.errors import ConfigError, IdentificationError
 from wingwatch.daemon.identify.differentiate import DelayLine, SavgolDifferentiator
 from wingwatch.daemon.identify.era import era, hankel_factors_near
 from wingwatch.daemon.identify.interpretable import simulate_states
+from wingwatch.daemon.identify.lag import THIN_AIRFOIL_SLOPE, CirculatoryLag
 from wingwatch.daemon.identify.modes import ModeTracker, modal_parameters
 from wingwatch.daemon.identify.rls import RecursiveLeastSquares
 from wingwatch.daemon.identify.transient import (estimate_markov, markov_draws, realise,
@@ -84,7 +85,14 @@ IDENTIFY_DEFAULTS: dict[str, Any] = {
     "qs_lift_bounds": [0.0, 12.6],
     "realisation_draws": 8,
     "realisation_every": 5,
+    "lift_lag_chord_m": 0.0,
+    "lift_lag_density_kg_m3": 0.0,
+    "lift_lag_scale": 0.0,
 }
+
+#: Float keys for which 0 is allowed (off, or "derive it").
+_ZERO_OK_FLOATS = ("gate", "ci_batch_s", "lift_lag_chord_m", "lift_lag_density_kg_m3",
+                   "lift_lag_scale")
 
 #: Two-sided 95 % normal quantile.
 _Z975 = NormalDist().inv_cdf(0.975)
@@ -116,6 +124,9 @@ class IdentifySettings:
     qs_lift_bounds: tuple[float, float]
     realisation_draws: int
     realisation_every: int
+    lift_lag_chord_m: float
+    lift_lag_density_kg_m3: float
+    lift_lag_scale: float
 
     @classmethod
     def from_config(cls, config: Config) -> "IdentifySettings":
@@ -148,7 +159,7 @@ class IdentifySettings:
                 finite_ok = math.isfinite(v) if isinstance(v, (int, float)) else False
                 if k == "half_life_s" and isinstance(v, float) and v == math.inf:
                     finite_ok = True  # inf: no forgetting (batch least squares, for checks)
-                zero_ok = k in ("gate", "ci_batch_s")  # 0 turns the gate / robust intervals off
+                zero_ok = k in _ZERO_OK_FLOATS  # 0 turns the feature off (or derives it)
                 if (isinstance(v, bool) or not isinstance(v, (int, float)) or not finite_ok
                         or v < 0 or (v == 0 and not zero_ok)):
                     raise ConfigError(f"{where}: key {key} must be a positive number.")
@@ -169,6 +180,12 @@ class IdentifySettings:
             raise ConfigError(f"{where}: key 'identify.gate' must be in [0, 1).")
         if out["max_spectral_radius"] >= 1:
             raise ConfigError(f"{where}: key 'identify.max_spectral_radius' must be below 1.")
+        if out["lift_lag_chord_m"] > 0 and out["lift_lag_density_kg_m3"] <= 0:
+            raise ConfigError(f"{where}: key 'identify.lift_lag_density_kg_m3' must be set (the "
+                              "fluid's density, for the flow speed) when lift_lag_chord_m is.")
+        if out["lift_lag_scale"] > 1:
+            raise ConfigError(f"{where}: key 'identify.lift_lag_scale' must be at most 1 (0: the "
+                              "reference's lift slope over 2 pi).")
         return cls(**out)
 
 
@@ -354,6 +371,7 @@ class OnlineIdentifier:
             theta0 = np.zeros((4, 2))
         self.A, self.B = A, B
         self.x = np.zeros(A.shape[0])
+        self.lift_lag = self._new_lag()
         self.markov_hyper: list | None = None  # kernel hyperparameters, warm start
         self.job: dict[str, Any] | None = None  # slow-layer candidate waiting for its sample count
         self._futures.clear()
@@ -381,6 +399,18 @@ class OnlineIdentifier:
         self.last_block: dict[str, Any] | None = None
         self.spread = _WindowSpread(0.5 ** (s.slow_period_s / s.half_life_s))
         self.realisation_sd: np.ndarray | None = None  # (3, 2): see _realisation_spread
+
+    def _new_lag(self) -> CirculatoryLag | None:
+        """The circulatory-lag prior on the quasi-steady regressor (identify.lift_lag_*;
+        :mod:`wingwatch.daemon.identify.lag`), or None when it is off."""
+        s = self.settings
+        if s.lift_lag_chord_m <= 0:
+            return None
+        scale = s.lift_lag_scale
+        if scale <= 0:  # from the reference's lift slope; a cold start takes a rigid wing's
+            slope = float(self.reference.k_qs[0]) if self.reference is not None else 0.0
+            scale = min(max(slope / THIN_AIRFOIL_SLOPE, 0.05), 1.0) if slope > 0 else 1.0
+        return CirculatoryLag(s.lift_lag_chord_m, s.lift_lag_density_kg_m3, scale, self.rate)
 
     def _new_rls(self, theta0: np.ndarray) -> RecursiveLeastSquares:
         s = self.settings
@@ -433,6 +463,8 @@ class OnlineIdentifier:
         self.flow_delay.reset()
         self.settle_left = self.settings.diff_window
         self.x = np.zeros(self.rank)
+        if self.lift_lag is not None:
+            self.lift_lag.reset()
         self.ring.clear()
         if self.job is not None:
             self.job["catchup"].append(None)
@@ -441,6 +473,7 @@ class OnlineIdentifier:
         blocks, self.pending, self.pending_n = self.pending, [], 0
         t = np.concatenate([b.t for b in blocks])
         alpha = np.concatenate([b.alpha for b in blocks])
+        q = np.concatenate([b.dynamic_pressure for b in blocks])
         y = np.column_stack([np.concatenate([b.lift for b in blocks]),
                              np.concatenate([b.curvature for b in blocks])])
         n = t.size
@@ -452,9 +485,11 @@ class OnlineIdentifier:
         if self.alpha0 is None:  # cold start: the first data fix the operating point
             self.alpha0 = float(d[0, 0])
             self.y0 = ys[0].copy()
-        a = d[:, 0] - self.alpha0
+        alpha_dev = d[:, 0] - self.alpha0
         ad, add = d[:, 1], d[:, 2]
         dy = ys - self.y0
+        # The quasi-steady regressor: alpha, or alpha through the circulatory lag (lag.py).
+        a = alpha_dev if self.lift_lag is None else self.lift_lag.apply(alpha_dev, ad, q)
         X, self.x = simulate_states(self.A, self.B[:, 0], ad, self.x)  # lifted maps, cached
         ok = flow_d.copy()
         if self.settle_left:
@@ -478,8 +513,10 @@ class OnlineIdentifier:
             self.win_yy += np.sum(yo * yo, axis=0)
             self.win_n += po.shape[0]
         # What the watchers see of this block (aligned, deviations about the operating point).
-        self.last_block = {"t": t - self.lag * self.dt, "a": a, "ad": ad, "add": add, "dy": dy,
-                           "X": X, "ok": ok}
+        # "a" is the quasi-steady regressor the model's columns multiply; "alpha" the incidence
+        # (they differ when the circulatory lag is on).
+        self.last_block = {"t": t - self.lag * self.dt, "a": a, "alpha": alpha_dev, "ad": ad,
+                           "add": add, "dy": dy, "X": X, "ok": ok}
         self.samples += n
         self.since_slow += n
         self.last_t = float(t[-1]) - self.lag * self.dt  # the newest sample the model has seen
@@ -804,6 +841,17 @@ class OnlineIdentifier:
         coef, intervals = self._coefficients(rls)
         modes = self._modes(A, B, C) if status != "rejected" else (
             self.in_service["modes"] if self.in_service else [])
+        lag_info = None
+        if self.lift_lag is not None:
+            # Published in the model class of the calibration: the lag states appended to the
+            # transient, their output matrix tied to the quasi-steady column (lag.py).
+            Al, Bl, Cl = self.lift_lag.state_space(th[0])
+            A = np.block([[A, np.zeros((r, Al.shape[0]))], [np.zeros((Al.shape[0], r)), Al]])
+            B = np.vstack([np.asarray(B, dtype=float).reshape(r, 1), Bl.reshape(-1, 1)])
+            C = np.hstack([C, Cl])
+            lag_info = {"states": int(Al.shape[0]), "scale": self.lift_lag.scale,
+                        "chord_m": self.settings.lift_lag_chord_m,
+                        "speed_m_s": self.lift_lag.speed}
         body: dict[str, Any] = {
             "model_id": f"M{seq:06d}",
             "seq": seq,
@@ -826,6 +874,7 @@ class OnlineIdentifier:
                     "window_s": self.settings.fit_half_life_s},
             "excitation": float(rls.excitation_of([0, 1, 2])),
             "hankel_sv": np.asarray(hsv, dtype=float),
+            "lift_lag": lag_info,
         }
         if self.reference is not None:
             ref = self.reference
@@ -865,7 +914,8 @@ class OnlineIdentifier:
             "A": self.A.copy(), "B": self.B.copy(), "x": self.x.copy(),
             "rls": self.rls.state_dict(),
             "pending": [(b.t.copy(), b.alpha.copy(), b.lift.copy(), b.curvature.copy(),
-                         b.discontinuity) for b in self.pending],
+                         b.discontinuity, b.dynamic_pressure.copy()) for b in self.pending],
+            "lift_lag": None if self.lift_lag is None else self.lift_lag.state_dict(),
             "samples": self.samples, "since_slow": self.since_slow,
             "settle_left": self.settle_left,
             "ring": {"buf": self.ring.buf.copy(), "n": self.ring.n, "head": self.ring.head},
@@ -900,12 +950,15 @@ class OnlineIdentifier:
         rs = st["rls"]
         self.rls = self._new_rls(np.zeros((int(rs["n_regressors"]), 2)))
         self.rls.load_state_dict(rs)
+        if self.lift_lag is not None and st.get("lift_lag") is not None:
+            self.lift_lag.load_state_dict(st["lift_lag"])
         self.pending = []
         self.pending_n = 0
-        for t, al, li, cu, disc in st["pending"]:
+        for t, al, li, cu, disc, *rest in st["pending"]:
             t = np.asarray(t, dtype=float)
+            q = np.asarray(rest[0], float) if rest else np.zeros(t.size)  # older: no q kept
             blk = ConditionedBlock(t=t, alpha=np.asarray(al, float), lift=np.asarray(li, float),
-                                   curvature=np.asarray(cu, float), dynamic_pressure=np.zeros(t.size),
+                                   curvature=np.asarray(cu, float), dynamic_pressure=q,
                                    si=np.zeros((t.size, 0)), seq=-1, discontinuity=bool(disc))
             self.pending.append(blk)
             self.pending_n += blk.n

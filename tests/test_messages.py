@@ -48,7 +48,10 @@ def test_every_message_type_reads_with_plain_msgpack():
     arrays = []
     _plain_arrays({"A": model["A"], "B": model["B"], "C": model["C"]}, arrays)
     A, B, C = arrays
-    r = model["rank"]
+    # the state holds the identified transient (rank) and, when the circulatory-lag prior is
+    # on (the shipped configuration), its lag states after it (docs/protocol.md)
+    lag = model.get("lift_lag")
+    r = model["rank"] + (lag["states"] if lag else 0)
     assert A.shape == (r, r) and B.shape == (r, 1) and C.shape == (2, r)
     assert np.all(np.isfinite(A))
     watch = msgpack.unpackb(got[b"ww.watch"][-1], raw=False)

@@ -144,8 +144,12 @@ class MarginForecaster:
         return self._maps
 
     def update(self, a: np.ndarray, ad: np.ndarray, add: np.ndarray, dy: np.ndarray,
-               ok: np.ndarray) -> None:
-        """Run the filter over a block (deviations about the operating point)."""
+               ok: np.ndarray, alpha: np.ndarray | None = None) -> None:
+        """Run the filter over a block (deviations about the operating point).
+
+        ``a`` is the quasi-steady regressor the model's columns multiply; ``alpha`` the
+        incidence when they differ (the identifier's circulatory lag): a hold forecast holds
+        the incidence and takes the lag as settled, the steady (conservative) side of it."""
         th = self.theta
         A, B, C, L = self.A, self.B[:, 0], self.C, self.gain
         x = self.x
@@ -172,7 +176,8 @@ class MarginForecaster:
             decay = 2.0 ** (-a.size * self.dt / 5.0)
             self.ad_sq = decay * self.ad_sq + float(np.sum(ad[ok] ** 2))
             self.ad_n = decay * self.ad_n + int(np.count_nonzero(ok))
-        self.last = {"a": float(a[-1]), "ad": float(ad[-1]), "add": float(add[-1]),
+        hold = a if alpha is None else alpha
+        self.last = {"a": float(hold[-1]), "ad": float(ad[-1]), "add": float(add[-1]),
                      "kappa": float(dy[-1, 1] + self.y0[1])}
 
     def forecast(self, plan: tuple[float, float, np.ndarray] | None = None, t_now: float = 0.0
