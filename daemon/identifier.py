@@ -13,7 +13,10 @@ The model is the calibration's (``daemon/calibrate.py``)::
   ``[alpha, alpha_dot, alpha_ddot, x, 1]`` for both outputs, with exponential forgetting set
   by a half-life and gated directional forgetting against windup (Kulhavy 1987), in the
   square-root information form of :mod:`wingwatch.daemon.identify.rls`. The transient states
-  ``x`` come from running the current (A, B) on alpha_dot.
+  ``x`` come from running the current (A, B) on alpha_dot. With ``identify.lift_lag_chord_m``
+  set, the first regressor is alpha seen through Wagner's function instead of alpha itself
+  (the circulatory-lag prior, :mod:`wingwatch.daemon.identify.lag`), so that ``K_qs`` is the
+  steady slope; published models then carry the lag states appended to the transient.
 - **Slow layer** (every ``slow_period_s`` of sample time): on the last ``slow_window_s``, the
   residual after the interpretable terms is realised anew (regularised least-squares Markov
   parameters and ERA, Juang and Pappa 1985; :mod:`wingwatch.daemon.identify.transient`), rank

@@ -1,6 +1,7 @@
 """Classical closed-form references for the virtual rig: thin-airfoil theory, Theodorsen, Wagner.
 
-Used by the rig's checks, its documentation and the benchmark; nothing in the simulator calls them.
+Used by the rig's checks, its documentation and the benchmark, and (Theodorsen's function) by the
+identifier's circulatory-lag prior (``daemon/identify/lag.py``); nothing in the simulator calls them.
 
 * T. Theodorsen, "General theory of aerodynamic instability and the mechanism of flutter", NACA
   Report 496 (1935): the lift deficiency function C(k) = H1(k) / (H1(k) + i H0(k)), H_n the Hankel
