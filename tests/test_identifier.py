@@ -230,11 +230,12 @@ def test_fast_layer_without_forgetting_equals_batch_least_squares():
     np.testing.assert_allclose(ident.rls.theta, theta, rtol=1e-8, atol=1e-10)
 
 
-def test_hold_is_rejected_and_previous_model_stays_in_service():
+@pytest.mark.parametrize("cfg", [CFG, LAG_CFG], ids=["plain", "lag"])
+def test_hold_is_rejected_and_previous_model_stays_in_service(cfg):
     n = 40000
     alpha, ad, add = motion(n, seed=5, hold_from=26000)
     y = outputs(alpha, ad, add)
-    ident, models = run(CFG, frames(alpha, y, noise=1e-3))
+    ident, models = run(cfg, frames(alpha, y, noise=1e-3))
     before = [m for m in models if m["t"] < 28.5 and m["status"] == "accepted"]
     # slow-update windows that hold no motion at all (the filters' lag and smoothing carry the
     # last of the motion a little past 26 s)

@@ -128,6 +128,12 @@ def test_margin_forecast_hold_and_plan():
     fc = f.forecast(plan, t_now)
     assert fc["source"] == "plan"
     assert fc["time_to_limit_s"] == pytest.approx(0.55, abs=0.011)
+    # With the identifier's lag prior the model's regressor (here 0.018 rad: still lagging) and
+    # the incidence (0.02 rad) differ: a hold holds the incidence, the lag taken as settled, so
+    # the forecast is the steady curvature at the incidence, not at the lagging regressor.
+    f.update(np.full(100, 0.018), np.zeros(100), np.zeros(100), np.outer(np.full(100, 0.018),
+             [3.0, 10.0]), np.ones(100, bool), alpha=np.full(100, 0.02))
+    assert f.forecast()["kappa_max_forecast"] == pytest.approx(0.9 + 10.0 * 0.02, abs=1e-6)
 
 
 def _scenario(tmp, seed, changes):
