@@ -128,8 +128,7 @@ class CirculatoryLag:
                 self.speed = math.sqrt(2.0 * qm / self.rho)
         if self.speed is None:
             return np.asarray(a, dtype=float).copy()
-        A, B = self._discrete()
-        p, g = np.diag(A), B
+        p, g = self._discrete()
         lag = np.zeros(len(a))
         for i in range(self.x.size):
             # s_i(k+1) = p s_i(k) + g ad(k); lag(k) uses s_i(k) (before ad(k) acts, as the
@@ -140,18 +139,20 @@ class CirculatoryLag:
         return a - self.scale * lag
 
     def _discrete(self) -> tuple[np.ndarray, np.ndarray]:
+        """Per-state pole ``p`` and input gain ``g`` of the sampled recursion (the rate held
+        over a sample); at rest before any flow is seen: ``p = 1``, ``g = dt``."""
         lam = self._rates() if self.speed is not None else np.zeros_like(self.w)
         p = np.exp(-lam * self.dt)
         safe = np.where(lam > 0, lam, 1.0)
-        g = np.where(lam > 0, -np.expm1(-lam * self.dt) / safe, self.dt)  # rate held over dt
-        return np.diag(p), g
+        g = np.where(lam > 0, -np.expm1(-lam * self.dt) / safe, self.dt)
+        return p, g
 
     def state_space(self, k_qs: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """The lag as states to append to the transient ``x(k+1) = A x(k) + B alpha_dot(k)``,
         at the current flow speed: ``(A_lag, B_lag, C_lag)`` with ``C_lag = -s k_qs w^T``
         (2 x m), so that ``K_qs z = K_qs alpha + C_lag x_lag``. The states are :attr:`x`."""
-        A, B = self._discrete()
-        return A, B, -self.scale * np.outer(np.asarray(k_qs, dtype=float), self.w)
+        p, g = self._discrete()
+        return np.diag(p), g, -self.scale * np.outer(np.asarray(k_qs, dtype=float), self.w)
 
     def state_dict(self) -> dict[str, Any]:
         return {"x": self.x.copy(), "speed": self.speed, "scale": self.scale}

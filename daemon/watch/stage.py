@@ -313,7 +313,7 @@ class Watcher:
         t_end = float(lb["t"][-1])
         # The block ran through the identifier's model of the time; a new model from the slow
         # update at its end takes over (with the identifier's state) from the next block on.
-        self.margin.update(lb["a"], lb["ad"], lb["add"], lb["dy"], lb["ok"], lb.get("alpha"))
+        self.margin.update(lb["a"], lb["ad"], lb["add"], lb["dy"], lb["ok"], lb["alpha"])
         self._track_model()
         self._reference_residual(lb)
         for basis in (self.basis, self.basis_alt):
@@ -358,7 +358,7 @@ class Watcher:
 
         X, self.ref_x = simulate_states(ref.A, ref.B[:, 0], lb["ad"], self.ref_x)
         # the reference model is the calibration's: on the incidence itself
-        pred = (np.outer(lb.get("alpha", lb["a"]), ref.k_qs) + np.outer(lb["ad"], ref.k_rate)
+        pred = (np.outer(lb["alpha"], ref.k_qs) + np.outer(lb["ad"], ref.k_rate)
                 + np.outer(lb["add"], ref.k_am) + X @ ref.C.T + ref.bias)
         e = (lb["dy"] - pred)[lb["ok"]]
         self.ref_sq += np.sum(e * e, axis=0)
