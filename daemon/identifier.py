@@ -387,6 +387,11 @@ class OnlineIdentifier:
         self.ring = _Ring(self.window_n, 5)  # alpha, alpha_dot, alpha_ddot, y1, y2 (deviations)
         self.fit_e2 = np.zeros(2)
         self.fit_y2 = np.zeros(2)
+        # The fast layer starts with no precision (the reference is a starting estimate, not
+        # data), so its first estimates rest on a few nearly collinear samples and their a-priori
+        # errors can be thousands of times the signal: they would dominate the fit measure for
+        # many of its half-lives. Errors count from one fit half-life of clean data on.
+        self.fit_wait = int(round(s.fit_half_life_s * self.rate))
         self.candidate_seq = 0
         self.in_service: dict[str, Any] | None = None
         self.last_t = 0.0
@@ -502,10 +507,14 @@ class OnlineIdentifier:
         phi = np.column_stack([a, ad, add, X, np.ones(n)])
         if ok.any():
             e = self.rls.update(phi[ok], dy[ok])
+            yc = dy[ok] - self.rls.theta[-1]
+            if self.fit_wait:  # the estimator's start (see reset): not yet a prediction
+                k = min(self.fit_wait, e.shape[0])
+                e, yc = e[k:], yc[k:]
+                self.fit_wait -= k
             w = self.fit_lam ** np.arange(e.shape[0] - 1, -1, -1)[:, None]
             decay = self.fit_lam ** e.shape[0]
             self.fit_e2 = decay * self.fit_e2 + np.sum(w * e * e, axis=0)
-            yc = dy[ok] - self.rls.theta[-1]
             self.fit_y2 = decay * self.fit_y2 + np.sum(w * yc * yc, axis=0)
             self.ring.extend(np.column_stack([a, ad, add, dy])[ok])
             self.rate_sq += float(np.sum(ad[ok] ** 2))
@@ -921,6 +930,7 @@ class OnlineIdentifier:
             "lift_lag": None if self.lift_lag is None else self.lift_lag.state_dict(),
             "samples": self.samples, "since_slow": self.since_slow,
             "settle_left": self.settle_left,
+            "fit_wait": self.fit_wait,
             "ring": {"buf": self.ring.buf.copy(), "n": self.ring.n, "head": self.ring.head},
             "fit_e2": self.fit_e2.copy(), "fit_y2": self.fit_y2.copy(),
             "candidate_seq": self.candidate_seq, "last_t": self.last_t,
@@ -968,6 +978,7 @@ class OnlineIdentifier:
         self.samples = int(st["samples"])
         self.since_slow = int(st["since_slow"])
         self.settle_left = int(st["settle_left"])
+        self.fit_wait = int(st.get("fit_wait", 0))  # older checkpoints: counting already
         self.ring.buf = np.array(st["ring"]["buf"], dtype=float)
         self.ring.n = int(st["ring"]["n"])
         self.ring.head = int(st["ring"]["head"])
