@@ -390,8 +390,9 @@ class OnlineIdentifier:
         # The fast layer starts with no precision (the reference is a starting estimate, not
         # data), so its first estimates rest on a few nearly collinear samples and their a-priori
         # errors can be thousands of times the signal: they would dominate the fit measure for
-        # many of its half-lives. Errors count from one fit half-life of clean data on.
-        self.fit_wait = int(round(s.fit_half_life_s * self.rate))
+        # many of its half-lives. Errors count from one fit half-life of clean data on (at most
+        # a quarter of the slow window, so that the gate never sees an empty measure).
+        self.fit_wait = int(round(min(s.fit_half_life_s, 0.25 * s.slow_window_s) * self.rate))
         self.candidate_seq = 0
         self.in_service: dict[str, Any] | None = None
         self.last_t = 0.0

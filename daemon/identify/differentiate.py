@@ -75,7 +75,7 @@ def savgol_kernels(window: int, order: int, dt: float = 1.0, pos: int | None = N
 
     Examples
     --------
-    >>> savgol_kernels(5, 2, n_deriv=2).round(6).tolist()
+    >>> (savgol_kernels(5, 2, n_deriv=2).round(6) + 0.0).tolist()  # + 0.0: no signed zeros
     [[-0.085714, 0.342857, 0.485714, 0.342857, -0.085714], [0.2, 0.1, 0.0, -0.1, -0.2]]
     """
     pos = _check(window, order, pos, n_deriv)
