@@ -18,7 +18,7 @@ the two compare directly. This is the textbook free-decay (log-decrement) measur
 instead of read from two peaks (e.g. W. T. Thomson, "Theory of Vibration with Applications",
 section on logarithmic decrement; from memory).
 
-Check (tests/test_rig_ringdown.py): with the fluid's density near zero the fit returns the
+Check (tests/test_stiffness_step.py): with the fluid's density near zero the fit returns the
 Euler-Bernoulli cantilever frequency of R. D. Blevins (1979), table 8-1, and the 2 % structural
 damping the modes are given.
 
