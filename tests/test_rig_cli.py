@@ -124,3 +124,17 @@ def test_shipped_replay_logs_are_the_scenarios(name, frames):
     # numpy/BLAS build may change the last bit of a reduction, hence rtol 1e-12, not equality)
     want = np.concatenate([f.samples for f in VirtualRig(name, duration_s=0.5).frames()])
     np.testing.assert_allclose(np.concatenate([f.samples for f in got[:50]]), want, rtol=1e-12, atol=1e-12)
+
+
+def test_a_strip_the_configuration_does_not_read_is_named(tmp_path, capsys):
+    """The stiff-strip scenario's 1.5 mm strip with the shipped 0.6 mm configuration: the
+    curvature a daemon would compute is 2.5 times the strip's (kappa = 2 eps / t); said once."""
+    assert rig_cli.run(parse("--scenario", "stiff-strip", "--duration", "0.1",
+                             "--out", str(tmp_path / "a.wwlog"))) == 0
+    err = capsys.readouterr().err
+    assert "1.5 mm strip" in err and "thickness_m = 0.0006" in err and "2.5 times" in err
+    cfg = tmp_path / "strip.toml"
+    cfg.write_text("[outputs.curvature]\nthickness_m = 0.0015\n")
+    assert rig_cli.run(parse("--scenario", "stiff-strip", "--duration", "0.1", "--config",
+                             str(cfg), "--out", str(tmp_path / "b.wwlog"))) == 0
+    assert "note:" not in capsys.readouterr().err

@@ -209,6 +209,18 @@ def _load_config(path: str | None, rate_hz: float):
     return cfg, spec
 
 
+def _thickness_note(cfg, rig: VirtualRig) -> None:
+    """Say so when the daemon's configuration reads the gauges of a different strip."""
+    t_cfg = cfg.outputs.curvature.thickness_m
+    t_rig = rig.scenario.article.thickness_m
+    if abs(t_cfg - t_rig) > 1e-9 * t_rig:
+        sys.stderr.write(
+            f"note: scenario '{rig.scenario.name}' flies a {1e3 * t_rig:g} mm strip but "
+            f"{cfg.source} reads strain with outputs.curvature.thickness_m = {t_cfg:g}; a daemon "
+            f"using it computes curvature {t_rig / t_cfg:.3g} times the strip's (set "
+            f"thickness_m = {t_rig:g} in the daemon's configuration)\n")
+
+
 def _messages(frames: Iterator[RigFrame], rig: VirtualRig) -> Iterator[tuple[bytes, bytes, float]]:
     from wingwatch.daemon.rig.source import rig_messages
 
@@ -246,6 +258,7 @@ def run(args: argparse.Namespace) -> int:
         from wingwatch.daemon.service import record_frames
 
         cfg, spec = _load_config(args.config, rig.rate_hz)
+        _thickness_note(cfg, rig)
         if spec.rate_hz != rig.rate_hz or tuple(spec.channels) != rig.channels:
             # the log's header carries the rig stream as this run produced it
             spec = replace(spec, rate_hz=rig.rate_hz, channels=rig.channels)
@@ -280,6 +293,7 @@ def _live(args: argparse.Namespace, rig: VirtualRig, truth: TruthWriter | None) 
     from wingwatch.clients.publisher import FramePublisher
 
     cfg, spec = _load_config(args.config, rig.rate_hz)
+    _thickness_note(cfg, rig)
     endpoint = args.endpoint or cfg.endpoints.sensor
     if spec.rate_hz != rig.rate_hz:
         sys.stderr.write(f"note: the daemon's configuration expects the rig at {spec.rate_hz:g} Hz, "
