@@ -24,6 +24,10 @@ The model is the calibration's (``daemon/calibrate.py``)::
   with the same rank by the state transformation that maps the old states onto the new ones over
   the window (least squares) and :meth:`RecursiveLeastSquares.transform`, so nothing learned is
   lost; with a new rank, by refitting the estimator over the window.
+- **Change points**: when the fast layer's one-step errors jump for two periods running
+  (``change_ratio``), the window restarts at the change and candidates wait for
+  ``3.2 x markov_s`` of the new dynamics, so that no model is realised from a window holding
+  two plants (:meth:`_detect_change`).
 - **Intervals**: the fast layer's autocorrelation-robust ones, the scatter of per-window
   estimates (:class:`_WindowSpread`), and, in quadrature, the spread of the columns over
   realisations of posterior draws of the Markov parameters (:meth:`_realisation_spread`);
@@ -91,11 +95,12 @@ IDENTIFY_DEFAULTS: dict[str, Any] = {
     "lift_lag_chord_m": 0.0,
     "lift_lag_density_kg_m3": 0.0,
     "lift_lag_scale": 0.0,
+    "change_ratio": 4.0,
 }
 
 #: Float keys for which 0 is allowed (off, or "derive it").
 _ZERO_OK_FLOATS = ("gate", "ci_batch_s", "lift_lag_chord_m", "lift_lag_density_kg_m3",
-                   "lift_lag_scale")
+                   "lift_lag_scale", "change_ratio")
 
 #: Two-sided 95 % normal quantile.
 _Z975 = NormalDist().inv_cdf(0.975)
@@ -130,6 +135,7 @@ class IdentifySettings:
     lift_lag_chord_m: float
     lift_lag_density_kg_m3: float
     lift_lag_scale: float
+    change_ratio: float
 
     @classmethod
     def from_config(cls, config: Config) -> "IdentifySettings":
@@ -186,6 +192,8 @@ class IdentifySettings:
         if out["lift_lag_chord_m"] > 0 and out["lift_lag_density_kg_m3"] <= 0:
             raise ConfigError(f"{where}: key 'identify.lift_lag_density_kg_m3' must be set (the "
                               "fluid's density, for the flow speed) when lift_lag_chord_m is.")
+        if 0 < out["change_ratio"] <= 1:
+            raise ConfigError(f"{where}: key 'identify.change_ratio' must be 0 (off) or above 1.")
         if out["lift_lag_scale"] > 1:
             raise ConfigError(f"{where}: key 'identify.lift_lag_scale' must be at most 1 (0: the "
                               "reference's lift slope over 2 pi).")
@@ -235,6 +243,13 @@ class _Ring:
     def clear(self) -> None:
         self.n = 0
         self.head = 0
+
+    def keep_last(self, k: int) -> None:
+        """Drop all but the newest ``k`` rows."""
+        if k < self.size:
+            rows = self.view()[self.size - k:] if k > 0 else np.zeros((0, self.buf.shape[1]))
+            self.clear()
+            self.extend(rows)
 
     @property
     def size(self) -> int:
@@ -350,6 +365,8 @@ class OnlineIdentifier:
         self.block_n = max(1, int(round(s.block_s * self.rate)))
         self.slow_n = max(1, int(round(s.slow_period_s * self.rate)))
         self.window_n = int(round(s.slow_window_s * self.rate))
+        # after a change point the window restarts; the Markov fit needs 3.2 x markov_s of it
+        self.min_window_n = min(self.window_n, int(math.ceil(3.2 * s.markov_s * self.rate)))
         self.lag_n = int(round(s.slow_lag_s * self.rate))
         self.fit_lam = 2.0 ** (-1.0 / (s.fit_half_life_s * self.rate))
         self.reset()
@@ -393,6 +410,17 @@ class OnlineIdentifier:
         # many of its half-lives. Errors count from one fit half-life of clean data on (at most
         # a quarter of the slow window, so that the gate never sees an empty measure).
         self.fit_wait = int(round(min(s.fit_half_life_s, 0.25 * s.slow_window_s) * self.rate))
+        self.fit_w = 0.0  # weight sum of the fit measure (its error variance is fit_e2 / fit_w)
+        # Change points (see _detect_change): this slow period's blocks [ring rows, counted
+        # samples, error energy (2), output energy (2), sample time], the fit measure at the
+        # period's start, and the time of the change the window restarted at (None: no cut).
+        self.period: list[list] = []
+        self.fit_base: list | None = None
+        self.prev_period: list | None = None  # [blocks, fit measure at its start]
+        self.suspect: list | None = None  # [time, error ratio] of a change not yet confirmed
+        self.cut_t: float | None = None
+        self.cut_ratio = 0.0
+        self.changes = 0
         self.candidate_seq = 0
         self.in_service: dict[str, Any] | None = None
         self.last_t = 0.0
@@ -475,6 +503,10 @@ class OnlineIdentifier:
         if self.lift_lag is not None:
             self.lift_lag.reset()
         self.ring.clear()
+        self.period = []
+        self.prev_period = None
+        self.suspect = None
+        self.cut_t = None
         if self.job is not None:
             self.job["catchup"].append(None)
 
@@ -517,6 +549,10 @@ class OnlineIdentifier:
             decay = self.fit_lam ** e.shape[0]
             self.fit_e2 = decay * self.fit_e2 + np.sum(w * e * e, axis=0)
             self.fit_y2 = decay * self.fit_y2 + np.sum(w * yc * yc, axis=0)
+            self.fit_w = decay * self.fit_w + float(np.sum(w))
+            self.period.append([int(np.count_nonzero(ok)), int(e.shape[0]),
+                                np.sum(e * e, axis=0), np.sum(yc * yc, axis=0),
+                                float(t[0]) - self.lag * self.dt])
             self.ring.extend(np.column_stack([a, ad, add, dy])[ok])
             self.rate_sq += float(np.sum(ad[ok] ** 2))
             self.rate_n += int(np.count_nonzero(ok))
@@ -541,6 +577,7 @@ class OnlineIdentifier:
                 outputs.extend(self._finish_job())
         if self.since_slow >= self.slow_n:
             self.since_slow = 0
+            self._detect_change()
             self.last_window = self._window_estimate()
             if self.last_window is not None:
                 self.spread.add(self.last_window["interpretable"])
@@ -591,6 +628,86 @@ class OnlineIdentifier:
         with np.errstate(invalid="ignore", divide="ignore"):
             return np.sqrt(self.fit_e2 / np.maximum(self.fit_y2, 1e-300))
 
+    def _detect_change(self) -> None:
+        """At a slow-update boundary: restart the window at a change in the dynamics.
+
+        A change of the plant (stiffness, flow speed, added mass) shows first in the fast
+        layer's a-priori errors, long before its forgetting has moved the columns. When, for an
+        output, the one-step error variance and the normalised error (error over output energy)
+        of each of the last two slow periods exceed ``change_ratio^2`` times the fit measure's
+        values before the first of them, the ring keeps only the samples from the first block
+        of those two periods whose error variance does so, and candidates wait for ``3.2 x
+        markov_s`` of the new dynamics instead of a whole window of mixed ones (the gate refuses
+        those: their refitted columns swing). Both measures are needed: a hold lowers the error
+        variance and raises the normalised error, renewed excitation the reverse. Two periods
+        are needed because one-period spikes happen without a change: when the first online
+        model replaces the reference's transient the errors can jump for one period (measured
+        on the campaign: x3.5 in curvature, then x1.5); the candidate of a boundary after one
+        period over waits (``suspect``). The ring refills to the full window from
+        there. Change points are sought only in a full window (after the start or a
+        discontinuity: the transient state restarts from zero and the errors are high for a
+        while) or, after a change, once the first candidate of the new dynamics is due.
+        Deterministic: block sums of the samples only.
+        """
+        s = self.settings
+        period, self.period = self.period, []
+        base = self.fit_base
+        self.fit_base = [self.fit_e2.copy(), self.fit_y2.copy(), self.fit_w]
+        prev, self.prev_period = self.prev_period, [period, base]
+        if self.cut_t is not None and self.ring.size >= self.window_n:
+            self.cut_t = None  # the window is whole again
+        self.suspect = None
+        if not (s.change_ratio > 0 and period and self.fit_wait == 0):
+            return
+        if self.ring.size < (self.window_n if self.cut_t is None else self.min_window_n):
+            return  # still filling after the start, a discontinuity or the last change
+        r2 = s.change_ratio ** 2
+
+        def over(blocks, ref):
+            """Which outputs' error variance and normalised error exceed r2 x those of the
+            fit measure ``ref``, and the error variance ratio; (None, None) without a usable
+            reference."""
+            if ref is None or not ref[2] > 0:
+                return None, None
+            e2_0, y2_0 = np.asarray(ref[0]), np.asarray(ref[1])
+            if not (np.all(e2_0 > 0) and np.all(y2_0 > 0)):
+                return None, None
+            var0, nr0 = e2_0 / float(ref[2]), e2_0 / y2_0
+            n = sum(b[1] for b in blocks)
+            if n == 0:
+                return None, None
+            e2 = np.sum([b[2] for b in blocks], axis=0)
+            y2 = np.sum([b[3] for b in blocks], axis=0)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                return ((e2 / n > r2 * var0) & (e2 / np.maximum(y2, 1e-300) > r2 * nr0),
+                        e2 / n / var0)
+
+        def first_over(blocks, j, ref):
+            var0 = float(ref[0][j]) / float(ref[2])
+            return next((i for i, b in enumerate(blocks) if b[1] and b[2][j] / b[1] > r2 * var0),
+                        0)
+
+        if prev is not None and prev[0]:
+            hit_a, _ = over(prev[0], prev[1])
+            hit_b, ratio = over(period, prev[1])
+            if hit_a is not None and hit_b is not None and (hit_a & hit_b).any():
+                j = int(np.argmax(np.where(hit_a & hit_b, ratio, -np.inf)))
+                both = prev[0] + period
+                first = first_over(both, j, prev[1])
+                self.ring.keep_last(sum(b[0] for b in both[first:]))
+                self.cut_t = float(both[first][4])
+                self.cut_ratio = float(math.sqrt(ratio[j]))
+                self.changes += 1
+                self.prev_period = None  # the next test: after the new window's first candidate
+                return
+        # One period over: a suspected change; the candidate of this boundary waits for the
+        # next period to confirm it (or not), so that no window across the change is realised.
+        hit, ratio = over(period, base)
+        if hit is not None and hit.any():
+            j = int(np.argmax(np.where(hit, ratio, -np.inf)))
+            self.suspect = [float(period[first_over(period, j, base)][4]),
+                            float(math.sqrt(ratio[j]))]
+
     def _slow_update(self) -> list[Output]:
         """At a slow-update boundary: refuse at once, or snapshot the window for the slow layer.
 
@@ -606,7 +723,17 @@ class OnlineIdentifier:
         if rms < s.min_rate_rms_deg_s:
             reason = (f"too little excitation since the last update (pitch-rate rms {rms:.2f} deg/s "
                       f"< {s.min_rate_rms_deg_s} deg/s): hold-only data cannot confirm a model")
-        elif self.ring.size < self.window_n:
+        elif self.suspect is not None:
+            reason = (f"the one-step error rose {self.suspect[1]:.1f} times in the last "
+                      f"{s.slow_period_s:g} s: a possible change in the dynamics at t = "
+                      f"{self.suspect[0]:.1f} s, to be confirmed by the next period before a "
+                      f"window across it is realised")
+        elif self.cut_t is not None and self.ring.size < self.min_window_n:
+            reason = (f"only {self.ring.size / self.rate:.1f} s of data since a change in the "
+                      f"dynamics at t = {self.cut_t:.1f} s (one-step error {self.cut_ratio:.1f} "
+                      f"times its level before); the slow layer needs "
+                      f"{self.min_window_n / self.rate:.1f} s of the new dynamics")
+        elif self.cut_t is None and self.ring.size < self.window_n:
             reason = (f"only {self.ring.size / self.rate:.1f} s of clean data since the start or the "
                       f"last discontinuity; the slow layer needs {s.slow_window_s:.1f} s")
         if reason:
@@ -932,6 +1059,18 @@ class OnlineIdentifier:
             "samples": self.samples, "since_slow": self.since_slow,
             "settle_left": self.settle_left,
             "fit_wait": self.fit_wait,
+            "fit_w": self.fit_w,
+            "period": [[b[0], b[1], b[2].copy(), b[3].copy(), b[4]] for b in self.period],
+            "fit_base": None if self.fit_base is None else [self.fit_base[0].copy(),
+                                                            self.fit_base[1].copy(),
+                                                            self.fit_base[2]],
+            "prev_period": None if self.prev_period is None else [
+                [[b[0], b[1], b[2].copy(), b[3].copy(), b[4]] for b in self.prev_period[0]],
+                None if self.prev_period[1] is None else [self.prev_period[1][0].copy(),
+                                                          self.prev_period[1][1].copy(),
+                                                          self.prev_period[1][2]]],
+            "cut_t": self.cut_t, "cut_ratio": self.cut_ratio, "changes": self.changes,
+            "suspect": None if self.suspect is None else list(self.suspect),
             "ring": {"buf": self.ring.buf.copy(), "n": self.ring.n, "head": self.ring.head},
             "fit_e2": self.fit_e2.copy(), "fit_y2": self.fit_y2.copy(),
             "candidate_seq": self.candidate_seq, "last_t": self.last_t,
@@ -980,6 +1119,23 @@ class OnlineIdentifier:
         self.since_slow = int(st["since_slow"])
         self.settle_left = int(st["settle_left"])
         self.fit_wait = int(st.get("fit_wait", 0))  # older checkpoints: counting already
+        # older checkpoints: no change-point state (the detector starts at the next boundary)
+        self.fit_w = float(st.get("fit_w", 0.0))
+        self.period = [[int(b[0]), int(b[1]), np.asarray(b[2], float), np.asarray(b[3], float),
+                        float(b[4])] for b in st.get("period", [])]
+        fb = st.get("fit_base")
+        self.fit_base = None if fb is None else [np.asarray(fb[0], float),
+                                                 np.asarray(fb[1], float), float(fb[2])]
+        pp = st.get("prev_period")
+        self.prev_period = None if pp is None else [
+            [[int(b[0]), int(b[1]), np.asarray(b[2], float), np.asarray(b[3], float),
+              float(b[4])] for b in pp[0]],
+            None if pp[1] is None else [np.asarray(pp[1][0], float), np.asarray(pp[1][1], float),
+                                        float(pp[1][2])]]
+        self.cut_t = None if st.get("cut_t") is None else float(st["cut_t"])
+        self.suspect = None if st.get("suspect") is None else [float(x) for x in st["suspect"]]
+        self.cut_ratio = float(st.get("cut_ratio", 0.0))
+        self.changes = int(st.get("changes", 0))
         self.ring.buf = np.array(st["ring"]["buf"], dtype=float)
         self.ring.n = int(st["ring"]["n"])
         self.ring.head = int(st["ring"]["head"])
