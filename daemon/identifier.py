@@ -37,7 +37,7 @@ The model is the calibration's (``daemon/calibrate.py``)::
   ``max_nrmse``, has coefficients within physical bounds and has seen enough excitation. A
   rejected candidate keeps the previous model in service and is published with its reason.
 - **Modes**: continuous-time frequency and damping from the eigenvalues of A, tracked across
-  updates by frequency proximity and MAC (Allemang and Brown 1982) with
+  updates by frequency proximity, MAC (Allemang and Brown 1982) and damping with
   ``scipy.optimize.linear_sum_assignment`` (:class:`~wingwatch.daemon.identify.modes.ModeTracker`).
 
 Samples are gathered into blocks of ``block_s`` of sample time before they are processed (the
