@@ -45,31 +45,19 @@ WITHIN_S = 20.0      # issue 6: in under 20 s of data
 MAX_DAMPING = 0.5    # an oscillatory mode (the rig's own mode has about 0.26-0.28)
 
 
-def strip_scenario(name: str, article):
-    """A shipped scenario flown with another article (e.g. the calibration manoeuvres)."""
-    from wingwatch.daemon.rig.scenario import load_scenario
-
-    return replace(load_scenario(name), article=article)
-
-
 def strip_config(cfg, article):
     """``cfg`` reading the strain of ``article``: the curvature's thickness set to the strip's."""
     curv = replace(cfg.outputs.curvature, thickness_m=float(article.thickness_m))
     return replace(cfg, outputs=replace(cfg.outputs, curvature=curv))
 
 
-def strip_reference(folder: Path, cfg, article):
-    """A reference model calibrated on ``article`` with the demo's two manoeuvres."""
-    from wingwatch.daemon.calibrate import calibrate, load_record
-    from wingwatch.daemon.rig.source import VirtualRig, write_rig_log
+def strip_reference(folder: Path, cfg, article, say=lambda m: None):
+    """A reference model calibrated on ``article`` with the demo's two manoeuvres (cached in
+    ``folder``, as the demo caches its own)."""
+    from wingwatch.daemon.demo import ensure_reference
+    from wingwatch.daemon.modelfile import load_model
 
-    folder.mkdir(parents=True, exist_ok=True)
-    logs = []
-    for name in ("calibration-5deg", "test-manoeuvre"):
-        path = folder / f"{name}.wwlog"
-        write_rig_log(VirtualRig(strip_scenario(name, article)), path, cfg)
-        logs.append(load_record(path))
-    return calibrate(*logs).model
+    return load_model(ensure_reference(folder, cfg, say=say, article=article))
 
 
 def first_bending(model: dict) -> dict | None:
@@ -156,8 +144,8 @@ def main(argv: list[str] | None = None) -> int:
     out.mkdir(parents=True, exist_ok=True)
     sc = load_scenario(SCENARIO)
     cfg = strip_config(load_config(a.config) if a.config else load_config(), sc.article)
-    print("calibrating a reference on the 1.5 mm strip ...", file=sys.stderr, flush=True)
-    ref = strip_reference(out / "ref", cfg, sc.article)
+    ref = strip_reference(out / "ref", cfg, sc.article,
+                          say=lambda m: print(f"{m} (the 1.5 mm strip)", file=sys.stderr))
     t_step, modes = truth(sc)
     before, after = modes["before"].freq_hz, modes["after"].freq_hz
     rows = []

@@ -43,15 +43,25 @@ CAL_SCENARIO = "calibration-5deg"
 TEST_SCENARIO = "test-manoeuvre"
 
 
-def _rig_log(scenario: str, path: Path, config: Config) -> Path:
+def _rig_log(scenario: str, path: Path, config: Config, article: Any = None) -> Path:
+    from dataclasses import replace
+
     from wingwatch.daemon.rig.scenario import load_scenario
     from wingwatch.daemon.rig.source import VirtualRig, write_rig_log
 
-    return write_rig_log(VirtualRig(load_scenario(scenario)), path, config)
+    sc = load_scenario(scenario)
+    if article is not None:
+        sc = replace(sc, article=article)
+    return write_rig_log(VirtualRig(sc), path, config)
 
 
-def ensure_reference(directory: Path, config: Config, say=print) -> Path:
-    """The demo's reference model file, calibrating it from the rig if it is not there yet."""
+def ensure_reference(directory: Path, config: Config, say=print, article: Any = None) -> Path:
+    """The demo's reference model file, calibrating it from the rig if it is not there yet.
+
+    ``article`` flies the two manoeuvres with another test article (the ``stiff-strip``
+    check's 1.5 mm strip); the model is cached in ``directory`` either way, so give each
+    article its own.
+    """
     from wingwatch.daemon.calibrate import calibrate, load_record
     from wingwatch.daemon.modelfile import load_model, save_model
 
@@ -64,8 +74,8 @@ def ensure_reference(directory: Path, config: Config, say=print) -> Path:
         except Exception:  # a damaged cache is rebuilt, not trusted
             model.unlink()
     say("calibrating the reference model on the virtual rig (first run only) ...")
-    cal = _rig_log(CAL_SCENARIO, directory / "calibration.wwlog", config)
-    test = _rig_log(TEST_SCENARIO, directory / "test-manoeuvre.wwlog", config)
+    cal = _rig_log(CAL_SCENARIO, directory / "calibration.wwlog", config, article)
+    test = _rig_log(TEST_SCENARIO, directory / "test-manoeuvre.wwlog", config, article)
     result = calibrate(load_record(cal), load_record(test))
     save_model(result.model, model)
     e = result.errors_by_rank[result.model.rank]
