@@ -547,12 +547,12 @@ class OnlineIdentifier:
                 self.fit_wait -= k
             w = self.fit_lam ** np.arange(e.shape[0] - 1, -1, -1)[:, None]
             decay = self.fit_lam ** e.shape[0]
-            self.fit_e2 = decay * self.fit_e2 + np.sum(w * e * e, axis=0)
-            self.fit_y2 = decay * self.fit_y2 + np.sum(w * yc * yc, axis=0)
+            ee, yy = e * e, yc * yc
+            self.fit_e2 = decay * self.fit_e2 + np.sum(w * ee, axis=0)
+            self.fit_y2 = decay * self.fit_y2 + np.sum(w * yy, axis=0)
             self.fit_w = decay * self.fit_w + float(np.sum(w))
-            self.period.append([int(np.count_nonzero(ok)), int(e.shape[0]),
-                                np.sum(e * e, axis=0), np.sum(yc * yc, axis=0),
-                                float(t[0]) - self.lag * self.dt])
+            self.period.append([int(np.count_nonzero(ok)), int(e.shape[0]), ee.sum(axis=0),
+                                yy.sum(axis=0), float(t[0]) - self.lag * self.dt])
             self.ring.extend(np.column_stack([a, ad, add, dy])[ok])
             self.rate_sq += float(np.sum(ad[ok] ** 2))
             self.rate_n += int(np.count_nonzero(ok))
@@ -638,7 +638,8 @@ class OnlineIdentifier:
         values before the first of them, the ring keeps only the samples from the first block
         of those two periods whose error variance does so, and candidates wait for ``3.2 x
         markov_s`` of the new dynamics instead of a whole window of mixed ones (the gate refuses
-        those: their refitted columns swing). Both measures are needed: a hold lowers the error
+        most of those, whose refitted columns swing, and the ones it passes blend two plants).
+        Both measures are needed: a hold lowers the error
         variance and raises the normalised error, renewed excitation the reverse. Two periods
         are needed because one-period spikes happen without a change: when the first online
         model replaces the reference's transient the errors can jump for one period (measured
